@@ -1,0 +1,5 @@
+"""``python -m fleetdb``."""
+
+from fleetdb.cli import main
+
+main()

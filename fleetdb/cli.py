@@ -1,0 +1,421 @@
+"""The ``fleetdb`` command: thin over the library (parse, one or two calls, format)."""
+
+from __future__ import annotations
+
+import functools
+import json
+import sys
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import click
+import pandas as pd
+
+from fleetdb import __version__, config
+from fleetdb.errors import FleetDBError
+
+CONTEXT_SETTINGS = {"help_option_names": ["-h", "--help"], "max_content_width": 100}
+
+
+def db_option(func: Callable) -> Callable:
+    """``--db URL|PATH``, falling back to FLEETDB_DATABASE_URL, then the default file."""
+    return click.option(
+        "--db", "db", envvar=config.ENV_VAR, show_envvar=True, metavar="URL|PATH",
+        help=f"Database: a SQLAlchemy URL or a SQLite file path [default: "
+             f"{config.default_sqlite_path()}]")(func)
+
+
+def json_option(func: Callable) -> Callable:
+    """``--json`` for machine-readable output."""
+    return click.option("--json", "as_json", is_flag=True,
+                        help="Print JSON (shape documented in the README).")(func)
+
+
+def as_of_option(func: Callable) -> Callable:
+    """``--as-of DATE``: reproduce the analysis as it stood on that day."""
+    return click.option("--as-of", "as_of", type=click.DateTime(["%Y-%m-%d"]), default=None,
+                        help="Analyse as of this date (YYYY-MM-DD) [default: today].")(func)
+
+
+def friendly_errors(func: Callable) -> Callable:
+    """Turn library errors into ``Error: ...`` and exit 1, never a traceback."""
+    @functools.wraps(func)
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        try:
+            return func(*args, **kwargs)
+        except FleetDBError as exc:
+            raise click.ClickException(str(exc)) from exc
+    return wrapper
+
+
+def _engine(db: str | None, *, check: bool = True):  # noqa: ANN202 - sqlalchemy Engine
+    from fleetdb import db as db_mod
+    from fleetdb import migrate
+
+    engine = db_mod.get_engine(config.database_url(db))
+    if check:
+        migrate.ensure_current(engine)
+    return engine
+
+
+def _end_of(day: Any) -> pd.Timestamp | None:
+    return None if day is None else pd.Timestamp(day).normalize() + pd.Timedelta(hours=23,
+                                                                                   minutes=59)
+
+
+def print_json(data: Any) -> None:
+    """Print data as indented JSON."""
+    click.echo(json.dumps(data, indent=2, ensure_ascii=False))
+
+
+def print_table(rows: list[dict[str, Any]], columns: list[tuple[str, str]]) -> None:
+    """Print rows as an aligned text table; ``columns`` are (key, heading) pairs."""
+    if not rows:
+        click.echo("(nothing to show)")
+        return
+    cells = [[("" if r.get(k) is None else str(r.get(k))) for k, _ in columns] for r in rows]
+    widths = [max(len(h), *(len(c[i]) for c in cells)) for i, (_, h) in enumerate(columns)]
+    click.echo("  ".join(h.ljust(w) for (_, h), w in zip(columns, widths, strict=True)).rstrip())
+    click.echo("  ".join("-" * w for w in widths))
+    for c in cells:
+        click.echo("  ".join(v.ljust(w) for v, w in zip(c, widths, strict=True)).rstrip())
+
+
+@click.group(context_settings=CONTEXT_SETTINGS)
+@click.version_option(__version__, "--version", prog_name="fleetdb")
+def cli() -> None:
+    """Cranking-compression and vacuum history of a fleet's engines.
+
+    Keeps every test per unit and cylinder, tells wear from a bad test, projects when
+    each engine crosses its limits. The tool advises; it does not certify: the engine
+    maker's service data, local rules and licensed practice come first.
+    """
+
+
+@cli.command()
+@db_option
+@friendly_errors
+def init(db: str | None) -> None:
+    """Create the database, or upgrade it to the newest schema.
+
+    \b
+    Example:
+        fleetdb init --db shop.sqlite
+    """
+    from fleetdb import migrate
+
+    url = config.database_url(db)
+    migrate.upgrade(url)
+    click.echo(f"Database ready at schema {migrate.head_revision()}: {config.redact(url)}")
+
+
+@cli.command()
+@db_option
+def where(db: str | None) -> None:
+    """Print which database fleetdb would use, and why.
+
+    \b
+    Example:
+        fleetdb where
+    """
+    import os
+
+    reason = ("--db" if db and db != os.environ.get(config.ENV_VAR) else
+              config.ENV_VAR if os.environ.get(config.ENV_VAR) else "default")
+    click.echo(f"{config.redact(config.database_url(db))}  (from {reason})")
+
+
+@cli.command(name="import")
+@click.argument("files", nargs=-1, required=True,
+                type=click.Path(exists=True, dir_okay=False, path_type=Path))
+@click.option("--dry-run", is_flag=True, help="Check and count; write nothing.")
+@click.option("--by", default=None, help="Who imports [default: your login name].")
+@db_option
+@friendly_errors
+def import_(files: tuple[Path, ...], dry_run: bool, by: str | None, db: str | None) -> None:
+    """Import fleet, tests and events CSV files (recognised by their header).
+
+    Each file is written whole or not at all; a file imported before is skipped.
+
+    \b
+    Example:
+        fleetdb import fleet.csv tests-2025-03.csv events.csv
+    """
+    from fleetdb import ingest
+
+    engine = _engine(db)
+    bar = None
+
+    def progress(done: int, total: int) -> None:
+        nonlocal bar
+        if not sys.stderr.isatty() or total < 200_000:
+            return
+        if bar is None:
+            bar = click.progressbar(length=total, label="writing readings", file=sys.stderr)
+            bar.__enter__()
+        bar.update(done - bar.pos)
+
+    try:
+        reports = ingest.import_files(engine, files, dry_run=dry_run, by=by, progress=progress)
+    finally:
+        if bar is not None:
+            bar.__exit__(None, None, None)
+    for report in reports:
+        click.echo(report.summary())
+    _refresh_after_write(engine, [u for r in reports for u in r.unit_ids], dry_run)
+
+
+def _refresh_after_write(engine: Any, unit_ids: list[int], dry_run: bool) -> None:
+    """Hook for the analysis to refresh the units a write touched."""
+    if dry_run or not unit_ids:
+        return
+    try:
+        from fleetdb import health
+    except ImportError:
+        return
+    health.refresh_units(engine, unit_ids)
+
+
+def _cylinder_values(kind: str, text: str | None, default_unit: str) -> list[Any]:
+    """Parse ``150,148,145,120`` (cylinder order) or ``2=150,4=128``; a value may carry a unit."""
+    from fleetdb.logbook import TypedReading
+    from fleetdb.units import parse_quantity
+
+    if not text:
+        return []
+    out = []
+    for position, item in enumerate(p.strip() for p in text.split(",")):
+        if not item:
+            continue
+        cyl_text, _, value_text = item.rpartition("=")
+        cylinder = int(cyl_text) if cyl_text.strip().isdigit() else position + 1
+        if cyl_text and not cyl_text.strip().isdigit():
+            raise click.BadParameter(f"{item!r}: write cylinder=value, like 2=150",
+                                     param_hint=f"--{kind}")
+        try:
+            number, unit = parse_quantity(value_text, default_unit)
+        except FleetDBError as exc:
+            raise click.BadParameter(str(exc), param_hint=f"--{kind}") from exc
+        out.append(TypedReading(kind, cylinder, f"{number:g}", unit))
+    return out
+
+
+@cli.command()
+@click.argument("fleet_no")
+@click.option("--at", "tested_at", required=True, metavar="'YYYY-MM-DD HH:MM'",
+              help="When the test was taken (shop local time).")
+@click.option("--hours", required=True, type=float, help="Hour meter at the test.")
+@click.option("--compression", metavar="VALUES", help="Dry cranking compression per cylinder: "
+              "150,148,145,120 in cylinder order, or 2=150,4=128.")
+@click.option("--wet", metavar="VALUES", help="Wet test (oil added), same form.")
+@click.option("--leakdown", metavar="VALUES", help="Leak-down percent per cylinder, same form.")
+@click.option("--relative", metavar="VALUES", help="Relative compression percent, same form.")
+@click.option("--units", "unit", default="psi", show_default=True,
+              type=click.Choice(["psi", "kPa", "bar", "MPa"]), help="Unit of the pressures.")
+@click.option("--vacuum-cranking", metavar="VALUE", help="Manifold vacuum while cranking, e.g. 1.5 "
+              "(in --vacuum-units) or '5 kPa'.")
+@click.option("--vacuum-idle", metavar="VALUE", help="Manifold vacuum at warm idle.")
+@click.option("--vacuum-units", default="inHg", show_default=True,
+              type=click.Choice(["inHg", "mmHg", "kPa"]))
+@click.option("--battery-v", help="Battery volts under crank.")
+@click.option("--crank-rpm", help="Cranking speed, rpm.")
+@click.option("--engine-temp-c", help="Engine temperature, °C.")
+@click.option("--baro-kpa", help="Barometer at the test, kPa absolute (else from site elevation).")
+@click.option("--throttle-open/--throttle-shut", default=None,
+              help="Whether the throttle was held wide open while cranking.")
+@click.option("--technician", help="Who took the test.")
+@click.option("--note", help="Anything worth keeping with the test.")
+@click.option("--dry-run", is_flag=True, help="Check only; write nothing.")
+@click.option("--by", default=None, help="Who logs it [default: your login name].")
+@db_option
+@friendly_errors
+def log(fleet_no: str, tested_at: str, hours: float, compression: str | None, wet: str | None,
+        leakdown: str | None, relative: str | None, unit: str, vacuum_cranking: str | None,
+        vacuum_idle: str | None, vacuum_units: str, battery_v: str | None,
+        crank_rpm: str | None, engine_temp_c: str | None, baro_kpa: str | None,
+        throttle_open: bool | None, technician: str | None, note: str | None, dry_run: bool,
+        by: str | None, db: str | None) -> None:
+    """Record one test from the terminal, checked like an import.
+
+    \b
+    Example:
+        fleetdb log LT-07 --at "2026-03-02 09:15" --hours 6120 \\
+            --compression 152,149,151,118 --vacuum-cranking 0.5 \\
+            --battery-v 10.4 --crank-rpm 210 --engine-temp-c 82 --throttle-open
+    """
+    from fleetdb import logbook
+    from fleetdb.units import parse_quantity
+
+    readings = []
+    for kind, text_, default in (("compression", compression, unit), ("wet", wet, unit),
+                                 ("leakdown", leakdown, "%"), ("relative", relative, "%")):
+        readings += _cylinder_values(kind, text_, default)
+    for kind, text_ in (("vacuum_cranking", vacuum_cranking), ("vacuum_idle", vacuum_idle)):
+        if text_:
+            try:
+                number, vac_unit = parse_quantity(text_, vacuum_units)
+            except FleetDBError as exc:
+                hint = f"--{kind.replace('_', '-')}"
+                raise click.BadParameter(str(exc), param_hint=hint) from exc
+            readings.append(logbook.TypedReading(kind, None, f"{number:g}", vac_unit))
+    conditions = {"battery_v": battery_v, "crank_rpm": crank_rpm, "engine_temp_c": engine_temp_c,
+                  "baro_kpa": baro_kpa, "technician": technician, "note": note,
+                  "throttle_open": None if throttle_open is None else
+                  ("yes" if throttle_open else "no")}
+    engine = _engine(db)
+    test_id = logbook.log_test(engine, fleet_no, tested_at, hours, readings,
+                               conditions=conditions, by=by, dry_run=dry_run)
+    if test_id is None:
+        click.echo(f"Checked: {len(readings)} readings for {fleet_no} are acceptable "
+                   "(dry run, nothing written).")
+        return
+    click.echo(f"Logged test {test_id} for {fleet_no}: {len(readings)} readings.")
+    from fleetdb.views import unit_id_for
+
+    _refresh_after_write(engine, [unit_id_for(engine, fleet_no)], False)
+
+
+@cli.command()
+@click.argument("test_id", type=int)
+@click.option("--reason", required=True, help="Why the test is taken out of the analysis.")
+@click.option("--by", default=None, help="Who voids it [default: your login name].")
+@db_option
+@friendly_errors
+def void(test_id: int, reason: str, by: str | None, db: str | None) -> None:
+    """Take a wrong test out of the analysis; it stays in the record.
+
+    \b
+    Example:
+        fleetdb void 1234 --reason "gauge hose leaked"
+    """
+    from fleetdb import logbook
+
+    engine = _engine(db)
+    logbook.void_test(engine, test_id, reason, by)
+    click.echo(f"Voided test {test_id}: {reason}")
+
+
+@cli.command()
+@json_option
+@db_option
+@friendly_errors
+def units(as_json: bool, db: str | None) -> None:
+    """List the fleet: every unit with its site, engine family and last test.
+
+    \b
+    Example:
+        fleetdb units --json
+    """
+    from fleetdb import views
+
+    rows = views.fleet_listing(_engine(db))
+    if as_json:
+        print_json(rows)
+        return
+    print_table(rows, [("fleet_no", "fleet no"), ("site", "site"),
+                       ("engine_family", "engine family"), ("fuel", "fuel"),
+                       ("tests", "tests"), ("last_tested_at", "last test"),
+                       ("last_hours", "hours")])
+
+
+@cli.command()
+@click.argument("fleet_no")
+@click.option("--units", "unit", default="psi", show_default=True,
+              type=click.Choice(["psi", "kPa", "bar"]), help="Unit for compression values.")
+@json_option
+@db_option
+@friendly_errors
+def unit(fleet_no: str, unit: str, as_json: bool, db: str | None) -> None:
+    """Show one unit: its engine family and every test with its readings.
+
+    \b
+    Example:
+        fleetdb unit LT-07 --units kPa
+    """
+    from fleetdb import views
+
+    data = views.unit_tests(_engine(db), fleet_no, unit)
+    if as_json:
+        print_json(data)
+        return
+    click.echo(f"{data['fleet_no']}  {data['engine_family']} ({data['fuel']}, "
+               f"{data['cylinders']} cyl, banks {data['banks']})  site {data['site']} "
+               f"({data['site_elevation_m']:g} m)  minimum {data['min_compression']} {unit}")
+    rows = []
+    for t in data["tests"]:
+        r = t["readings"]
+        rows.append({
+            "id": t["test_id"], "tested_at": t["tested_at"], "hours": t["hours"],
+            "compression": " ".join(f"{v:g}" for v in r.get("compression", {}).values()),
+            "wet": " ".join(f"{c}:{v:g}" for c, v in r.get("wet", {}).items()),
+            "vac": (r.get("vacuum_cranking") or {}).get("inHg"),
+            "v": t["battery_v"], "rpm": t["crank_rpm"],
+            "state": f"voided: {t['void_reason']}" if t["voided"] else ""})
+    print_table(rows, [("id", "test"), ("tested_at", "tested at"), ("hours", "hours"),
+                       ("compression", f"compression ({unit})"), ("wet", "wet"),
+                       ("vac", "crank vac inHg"), ("v", "volts"), ("rpm", "rpm"),
+                       ("state", "")])
+    for e in data["events"]:
+        cyl = ",".join(map(str, e["cylinders"])) or "all"
+        click.echo(f"  event {e['date']}: {e['kind']} (cylinders {cyl}) {e['note'] or ''}")
+
+
+@cli.command()
+@as_of_option
+@json_option
+@db_option
+@friendly_errors
+def board(as_of: Any, as_json: bool, db: str | None) -> None:
+    """The fleet's latest state: each unit's latest valid compression test, worst first.
+
+    \b
+    Example:
+        fleetdb board --as-of 2026-06-30
+    """
+    from fleetdb import views
+
+    rows = views.latest_compression(_engine(db), _end_of(as_of))
+    if as_json:
+        print_json(rows)
+        return
+    for r in rows:
+        r["state"] = "below minimum" if r["below_minimum"] else (
+            "spread" if r["ratio"] < r["min_ratio"] else "")
+    print_table(rows, [("fleet_no", "fleet no"), ("site", "site"),
+                       ("engine_family", "engine family"), ("tested_at", "last test"),
+                       ("lowest_kpa", "lowest kPa"), ("highest_kpa", "highest kPa"),
+                       ("ratio", "low/high"), ("state", "state")])
+
+
+@cli.command()
+@as_of_option
+@click.option("--seed", default=42, show_default=True, help="Random seed of the demo history.")
+@db_option
+@friendly_errors
+def demo(as_of: Any, seed: int, db: str | None) -> None:
+    """Build the invented demo fleet into the database and print its board.
+
+    Running it again on the same database changes nothing.
+
+    \b
+    Example:
+        fleetdb demo --db demo.sqlite
+    """
+    from fleetdb import demo as demo_mod
+    from fleetdb import migrate
+
+    url = config.database_url(db)
+    migrate.upgrade(url)
+    engine = _engine(db)
+    click.echo(f"Database: {config.redact(url)}")
+    for line in demo_mod.build_into(engine, None if as_of is None else as_of.date(), seed):
+        click.echo(line)
+    click.echo("")
+    ctx = click.get_current_context()
+    ctx.invoke(board, as_of=as_of, as_json=False, db=db)
+
+
+def main() -> None:
+    """Console-script entry point."""
+    cli(prog_name="fleetdb")

@@ -1,0 +1,52 @@
+"""Engine and sessions. SQLite gets WAL, foreign keys and a busy timeout."""
+
+from __future__ import annotations
+
+from functools import lru_cache
+from pathlib import Path
+
+from sqlalchemy import event
+from sqlalchemy.engine import Engine, make_url
+from sqlmodel import Session, create_engine
+
+SQLITE_BUSY_TIMEOUT_MS = 30_000
+
+
+def _sqlite_pragmas(dbapi_connection, _record) -> None:  # noqa: ANN001 - DBAPI objects
+    cursor = dbapi_connection.cursor()
+    cursor.execute("PRAGMA journal_mode=WAL")
+    cursor.execute("PRAGMA foreign_keys=ON")
+    cursor.execute(f"PRAGMA busy_timeout={SQLITE_BUSY_TIMEOUT_MS}")
+    cursor.execute("PRAGMA synchronous=NORMAL")
+    cursor.close()
+
+
+def make_engine(url: str) -> Engine:
+    """A new engine for ``url``; SQLite files and their folder are created on demand.
+
+    :param url: a SQLAlchemy URL (see :func:`fleetdb.config.database_url`).
+    """
+    parsed = make_url(url)
+    if parsed.get_backend_name() == "sqlite":
+        if parsed.database and parsed.database != ":memory:":
+            Path(parsed.database).parent.mkdir(parents=True, exist_ok=True)
+        engine = create_engine(url, connect_args={"timeout": SQLITE_BUSY_TIMEOUT_MS / 1000})
+        event.listen(engine, "connect", _sqlite_pragmas)
+        return engine
+    return create_engine(url, pool_pre_ping=True)
+
+
+@lru_cache(maxsize=8)
+def get_engine(url: str) -> Engine:
+    """One engine per URL per process."""
+    return make_engine(url)
+
+
+def session(url: str) -> Session:
+    """A new session on the process-wide engine for ``url``."""
+    return Session(get_engine(url))
+
+
+def is_sqlite(engine: Engine) -> bool:
+    """Whether the engine talks to SQLite."""
+    return engine.dialect.name == "sqlite"

@@ -1,0 +1,333 @@
+"""Load the import files and single tests into the store: validated, atomic, idempotent.
+
+Each file is one transaction: either every row of it is written, or none. A file whose
+content was imported before is recognised by its SHA-256 and skipped. Rows already in the
+store (same unit, time and hour meter for a test) are counted as present, not doubled.
+Bulk rows go through the driver's executemany (SQLite) or COPY (PostgreSQL), not one ORM
+object per row.
+"""
+
+from __future__ import annotations
+
+import getpass
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from sqlalchemy import text
+from sqlalchemy.engine import Connection, Engine
+
+from fleetdb import atmosphere, validate
+from fleetdb.csvfiles import KIND_ORDER, CsvFile, read_csv
+from fleetdb.errors import InvalidInput
+
+Progress = Callable[[int, int], None]  # (done, total)
+CHUNK = 50_000
+
+
+@dataclass
+class ImportReport:
+    """What one import did (or, on a dry run, would do)."""
+
+    source: str
+    kind: str
+    rows_read: int = 0
+    written: dict[str, int] = field(default_factory=dict)
+    present: int = 0
+    batch_id: int | None = None
+    outcome: str = "imported"  # imported | already_imported | dry_run
+    unit_ids: list[int] = field(default_factory=list)
+    test_ids: list[int] = field(default_factory=list)
+
+    def summary(self) -> str:
+        """One line for the terminal."""
+        if self.outcome == "already_imported":
+            return (f"{self.source}: already imported as batch {self.batch_id}; "
+                    "nothing to do")
+        counts = ", ".join(f"{n} {what}" for what, n in self.written.items()) or "nothing new"
+        verb = "would write" if self.outcome == "dry_run" else "wrote"
+        present = f"; {self.present} already present" if self.present else ""
+        return f"{self.source} ({self.kind}, {self.rows_read} rows): {verb} {counts}{present}"
+
+
+def current_user() -> str:
+    """The operating-system user, the default author of a write."""
+    try:
+        return getpass.getuser()
+    except (KeyError, OSError):
+        return "unknown"
+
+
+def _now() -> datetime:
+    return datetime.now(UTC).replace(microsecond=0)
+
+
+def stamp(conn: Connection) -> datetime | str:
+    """The time of a write, as this driver stores SQLAlchemy's UTC date-times."""
+    now = _now()
+    if conn.dialect.name == "sqlite":
+        return now.strftime("%Y-%m-%d %H:%M:%S.%f")
+    return now
+
+
+def _placeholders(conn: Connection, n: int) -> str:
+    mark = "?" if conn.dialect.name == "sqlite" else "%s"
+    return ", ".join([mark] * n)
+
+
+def bulk_insert(conn: Connection, table: str, columns: list[str], rows: list[tuple],
+                 progress: Progress | None = None) -> None:
+    """Insert many rows through the driver: COPY on PostgreSQL, executemany on SQLite."""
+    if not rows:
+        return
+    total = len(rows)
+    if conn.dialect.name == "postgresql":
+        cursor = conn.connection.driver_connection.cursor()
+        with cursor.copy(f"COPY {table} ({', '.join(columns)}) FROM STDIN") as copy:
+            for start in range(0, total, CHUNK):
+                for row in rows[start:start + CHUNK]:
+                    copy.write_row(row)
+                if progress:
+                    progress(min(start + CHUNK, total), total)
+        cursor.close()
+        return
+    sql = f"INSERT INTO {table} ({', '.join(columns)}) VALUES ({_placeholders(conn, len(columns))})"
+    cursor = conn.connection.driver_connection.cursor()
+    for start in range(0, total, CHUNK):
+        cursor.executemany(sql, rows[start:start + CHUNK])
+        if progress:
+            progress(min(start + CHUNK, total), total)
+    cursor.close()
+
+
+def _db_time(conn: Connection, values: pd.Series) -> list:
+    """Datetimes as the driver wants them (SQLite: SQLAlchemy's text format)."""
+    if conn.dialect.name == "sqlite":
+        return list(values.dt.strftime("%Y-%m-%d %H:%M:%S.%f"))
+    return list(values.dt.to_pydatetime())
+
+
+def none_for_na(values: pd.Series) -> list:
+    return [None if pd.isna(v) else v for v in values.astype(object)]
+
+
+# -- reference data ---------------------------------------------------------------------
+
+def unit_refs(conn: Connection) -> pd.DataFrame:
+    """Known units: index fleet_no; unit_id, cylinders, fuel, site_baro_kpa, site, family."""
+    rows = conn.execute(text(
+        "SELECT u.fleet_no, u.id, f.cylinders, f.fuel, s.elevation_m, s.name, f.name "
+        "FROM unit u JOIN engine_family f ON f.id = u.family_id JOIN site s ON s.id = u.site_id"
+    )).all()
+    frame = pd.DataFrame(rows, columns=["fleet_no", "unit_id", "cylinders", "fuel",
+                                        "elevation_m", "site", "engine_family"])
+    frame["site_baro_kpa"] = atmosphere.pressure_kpa(frame["elevation_m"].astype(float))
+    return frame.set_index("fleet_no")
+
+
+# -- the import of one file ---------------------------------------------------------------
+
+def import_files(engine: Engine, paths: Iterable[Path], *, dry_run: bool = False,
+                 by: str | None = None, progress: Progress | None = None) -> list[ImportReport]:
+    """Import several files, fleet files first, then events, then tests.
+
+    Each file is atomic on its own. Stops at the first file with problems.
+
+    :param engine: the store.
+    :param paths: CSV files of the three kinds, recognised by their header.
+    :param dry_run: validate and count, then roll back.
+    :param by: who imports (default: the operating-system user).
+    :param progress: called with (rows done, rows total) while writing.
+    """
+    files = [read_csv(Path(p)) for p in paths]
+    files.sort(key=lambda f: KIND_ORDER.index(f.kind))
+    return [import_csv(engine, f, dry_run=dry_run, by=by, progress=progress) for f in files]
+
+
+def import_csv(engine: Engine, csv: CsvFile, *, dry_run: bool = False, by: str | None = None,
+               progress: Progress | None = None, source: str = "csv") -> ImportReport:
+    """Validate and write one parsed file in one transaction (see :func:`import_files`)."""
+    by = by or current_user()
+    report = ImportReport(source=csv.name, kind=csv.kind, rows_read=len(csv.frame))
+    with engine.connect() as conn:  # one transaction; leaving without commit rolls back
+        previous = conn.execute(text("SELECT id FROM import_batch WHERE content_sha256 = :h"),
+                                {"h": csv.sha256}).scalar()
+        if previous is not None:
+            report.batch_id, report.outcome = previous, "already_imported"
+            return report
+        batch_id = conn.execute(text(
+            "INSERT INTO import_batch (file_name, content_sha256, file_kind, rows_read, "
+            "rows_written, rows_present, outcome, created_at, created_by) VALUES "
+            "(:name, :sha, :kind, :rows, 0, 0, 'importing', :at, :by) RETURNING id"),
+            {"name": Path(csv.name).name[:255], "sha": csv.sha256, "kind": csv.kind,
+             "rows": len(csv.frame), "at": stamp(conn), "by": by}).scalar_one()
+        from fleetdb.registry import import_fleet
+
+        writer = {"fleet": import_fleet, "tests": _import_tests, "events": _import_events}
+        writer[csv.kind](conn, csv, report, batch_id=batch_id, by=by, progress=progress,
+                         source=source)
+        conn.execute(text("UPDATE import_batch SET rows_written = :w, rows_present = :p, "
+                          "outcome = 'imported' WHERE id = :id"),
+                     {"w": sum(report.written.values()), "p": report.present, "id": batch_id})
+        if dry_run:
+            report.outcome = "dry_run"
+            conn.rollback()
+        else:
+            report.batch_id = batch_id
+            conn.commit()
+    return report
+
+
+def raise_if(problems: validate.Problems) -> None:
+    if problems:
+        raise InvalidInput(problems.sorted())
+
+
+def _import_tests(conn: Connection, csv: CsvFile, report: ImportReport, *, batch_id: int | None,
+                  by: str, progress: Progress | None, source: str) -> None:
+    problems = validate.Problems(csv.name)
+    units = unit_refs(conn)
+    now = pd.Timestamp.now() + pd.Timedelta(days=1)
+    rows = validate.tests_rows(csv.frame, units, problems, now)
+    raise_if(problems)
+
+    key = ["unit_id", "tested_at", "hours"]
+    conds = list(validate.CONDITION_RANGES) + ["throttle_open", "technician", "note"]
+    validate.group_conflicts(rows, key, conds, problems, "test")
+    dup = rows.duplicated(key + ["kind", "cylinder"], keep="first")
+    problems.add(dup, "cylinder", lambda line: f"a second {rows['kind'][line]} reading for the "
+                 "same cylinder of the same test")
+    # Vacuum may not exceed the ambient pressure where it was taken.
+    baro = rows["baro_kpa"].fillna(units.reindex(rows["fleet_no"])["site_baro_kpa"]
+                                   .set_axis(rows.index))
+    over = rows["kind"].isin(("vacuum_cranking", "vacuum_idle")) & (rows["value_si"] > baro)
+    problems.add(over, "value", lambda line: f"{csv.frame['value'][line]} "
+                 f"{csv.frame['units'][line]} of vacuum is more than the ambient pressure "
+                 f"({baro[line]:.1f} kPa)")
+    raise_if(problems)
+
+    rows["gid"] = rows.groupby(key, sort=False).ngroup()
+    tests = rows.groupby("gid", sort=True).agg(
+        {**{c: "first" for c in key}, **{c: "first" for c in conds}, "fleet_no": "first"})
+    tests["line"] = rows.reset_index(names="line").groupby("gid")["line"].first()
+
+    existing = pd.DataFrame(conn.execute(text(
+        "SELECT unit_id, tested_at, hours FROM test")).all(), columns=key)
+    existing["tested_at"] = pd.to_datetime(existing["tested_at"]).astype("datetime64[us]")
+    _check_hours_forward(conn, tests, existing, problems)
+    raise_if(problems)
+
+    merged = tests.merge(existing.assign(present=True), on=key, how="left")
+    is_present = merged["present"].fillna(False).to_numpy(dtype=bool)
+    new_tests = tests[~is_present]
+    report.present = int(is_present.sum())
+    report.unit_ids = sorted(int(u) for u in tests["unit_id"].unique())
+    n = len(new_tests)
+    ids = _allocate_ids(conn, "test", n)
+    id_of_gid = pd.Series(ids, index=new_tests.index)
+    at = stamp(conn)
+    test_rows = list(zip(
+        ids, new_tests["unit_id"].astype(int).tolist(), _db_time(conn, new_tests["tested_at"]),
+        new_tests["hours"].astype(float).tolist(),
+        *(none_for_na(new_tests[c]) for c in conds),
+        [source] * n, [batch_id] * n, [at] * n, [by] * n, strict=True))
+    bulk_insert(conn, "test", ["id", "unit_id", "tested_at", "hours", *conds, "source",
+                                "batch_id", "created_at", "created_by"], test_rows)
+    new_rows = rows[rows["gid"].isin(new_tests.index)]
+    reading_rows = list(zip(
+        id_of_gid.reindex(new_rows["gid"]).astype(int).tolist(), new_rows["kind"].tolist(),
+        none_for_na(new_rows["cylinder"]), new_rows["value_si"].astype(float).tolist(),
+        new_rows["typed_value"].tolist(), new_rows["typed_unit"].tolist(), strict=True))
+    bulk_insert(conn, "reading", ["test_id", "kind", "cylinder", "value_si", "typed_value",
+                                   "typed_unit"], reading_rows, progress)
+    if conn.dialect.name == "postgresql" and n:
+        conn.execute(text("SELECT setval(pg_get_serial_sequence('test', 'id'), "
+                          "(SELECT MAX(id) FROM test))"))
+    report.written = {"tests": n, "readings": len(reading_rows)}
+    report.test_ids = ids
+
+
+def _allocate_ids(conn: Connection, table: str, n: int) -> list[int]:
+    """Reserve ``n`` primary keys for a bulk insert inside the current write transaction."""
+    if n == 0:
+        return []
+    if conn.dialect.name == "postgresql":
+        return [r[0] for r in conn.execute(text(
+            f"SELECT nextval(pg_get_serial_sequence('{table}', 'id')) "
+            "FROM generate_series(1, :n)"), {"n": n})]
+    # SQLite: the import_batch insert already holds the write lock, so MAX(id) is stable.
+    start = conn.execute(text(f"SELECT COALESCE(MAX(id), 0) FROM {table}")).scalar_one()
+    return list(range(start + 1, start + 1 + n))
+
+
+def _check_hours_forward(conn: Connection, tests: pd.DataFrame, existing: pd.DataFrame,
+                         problems: validate.Problems) -> None:
+    """Hour meters only go forward in time, except across a recorded meter replacement."""
+    meters = pd.DataFrame(conn.execute(text(
+        "SELECT unit_id, date FROM service_event WHERE kind = 'hour_meter'")).all(),
+        columns=["unit_id", "date"])
+    frame = pd.concat([existing.assign(line=np.nan),
+                       tests[["unit_id", "tested_at", "hours", "line"]]], ignore_index=True)
+    frame = frame.drop_duplicates(["unit_id", "tested_at", "hours"], keep="last")
+    frame["unit_id"] = frame["unit_id"].astype(int)
+    frame["segment"] = 0
+    if not meters.empty:
+        meters["date"] = pd.to_datetime(meters["date"]).astype("datetime64[us]")
+        meters = meters.sort_values("date")
+        meters["segment"] = meters.groupby("unit_id").cumcount() + 1
+        frame = pd.merge_asof(frame.sort_values("tested_at").drop(columns="segment"),
+                              meters.astype({"unit_id": int}), left_on="tested_at",
+                              right_on="date", by="unit_id", direction="backward")
+        frame["segment"] = frame["segment"].fillna(0)
+    frame = frame.sort_values(["unit_id", "segment", "tested_at", "hours"], kind="stable")
+    same = (frame["unit_id"].eq(frame["unit_id"].shift())
+            & frame["segment"].eq(frame["segment"].shift()))
+    back = same & (frame["hours"] < frame["hours"].shift())
+    if not back.any():
+        return
+    prev = frame.shift()
+    for idx in frame.index[back.to_numpy()][: validate.MAX_LINES_PER_PROBLEM]:
+        row, before = frame.loc[idx], prev.loc[idx]
+        line = row["line"] if not pd.isna(row["line"]) else before["line"]
+        problems.one(int(line), "hours",
+                     f"{row['hours']:g} h on {row['tested_at']:%Y-%m-%d} is less than "
+                     f"{before['hours']:g} h on {before['tested_at']:%Y-%m-%d} for this unit; "
+                     "hour meters only go forward (record an hour_meter event if the meter "
+                     "was replaced)")
+
+
+def _import_events(conn: Connection, csv: CsvFile, report: ImportReport, *,
+                   batch_id: int | None, by: str, progress: Progress | None,
+                   source: str) -> None:
+    problems = validate.Problems(csv.name)
+    rows = validate.event_rows(csv.frame, unit_refs(conn), problems,
+                               pd.Timestamp.now() + pd.Timedelta(days=1))
+    raise_if(problems)
+    key = ["unit_id", "date", "kind", "cylinders"]
+    dup = rows.duplicated(key)
+    problems.add(dup, "kind", "the same event appears on an earlier line")
+    raise_if(problems)
+    existing = pd.DataFrame(conn.execute(text(
+        "SELECT unit_id, date, kind, cylinders FROM service_event")).all(), columns=key)
+    existing["date"] = pd.to_datetime(existing["date"]).astype("datetime64[us]")
+    merged = rows.merge(existing.assign(present=True), on=key, how="left")
+    is_present = merged["present"].fillna(False).to_numpy(dtype=bool)
+    new = rows[~is_present]
+    at = stamp(conn)
+    dates = [d.date() for d in new["date"]]
+    bulk_insert(conn, "service_event",
+                 ["unit_id", "date", "hours", "kind", "cylinders", "note", "batch_id",
+                  "created_at", "created_by"],
+                 list(zip(new["unit_id"].astype(int).tolist(),
+                          [d.isoformat() for d in dates] if conn.dialect.name == "sqlite"
+                          else dates,
+                          none_for_na(new["hours"]), new["kind"].tolist(),
+                          new["cylinders"].tolist(), none_for_na(new["note"]),
+                          [batch_id] * len(new), [at] * len(new), [by] * len(new),
+                          strict=True)))
+    report.present = int(is_present.sum())
+    report.written = {"events": len(new)}
+    report.unit_ids = sorted(int(u) for u in rows["unit_id"].unique())

@@ -1,0 +1,94 @@
+"""One test at a time: log it from typed values, void it. Same validation as the import."""
+
+from __future__ import annotations
+
+import hashlib
+from collections.abc import Sequence
+from dataclasses import dataclass
+from datetime import datetime
+
+import pandas as pd
+from sqlalchemy import text
+from sqlalchemy.engine import Engine
+
+from fleetdb.csvfiles import TESTS_OPTIONAL, TESTS_REQUIRED, CsvFile
+from fleetdb.errors import FleetDBError, InvalidInput, Problem
+from fleetdb.ingest import current_user, import_csv, stamp
+
+
+@dataclass(frozen=True)
+class TypedReading:
+    """One value as the technician typed it."""
+
+    kind: str
+    cylinder: int | None
+    value: str
+    units: str
+
+
+def log_test(engine: Engine, fleet_no: str, tested_at: datetime | str, hours: float | str,
+             readings: Sequence[TypedReading], *, conditions: dict[str, str] | None = None,
+             by: str | None = None, source: str = "cli", source_name: str = "command line",
+             dry_run: bool = False) -> int | None:
+    """Validate and store one test; return its id (None on a dry run).
+
+    :param engine: the store.
+    :param fleet_no: the unit's fleet number.
+    :param tested_at: when the test was taken (shop local time).
+    :param hours: the hour meter at the test.
+    :param readings: the values typed, each with kind, cylinder and unit.
+    :param conditions: optional battery_v, crank_rpm, engine_temp_c, baro_kpa,
+        throttle_open (yes/no), technician, note, as typed.
+    :param by: who logs it (default: the operating-system user).
+    :param source: ``cli`` or ``form``.
+    :param source_name: how messages name the input.
+    :param dry_run: validate only.
+    :raises InvalidInput: with every problem found; nothing is written.
+    """
+    if not readings:
+        problem = Problem(source_name, None, "value", "a test needs at least one reading")
+        raise InvalidInput([problem])
+    conditions = {k: str(v) for k, v in (conditions or {}).items() if v not in (None, "")}
+    unknown = set(conditions) - set(TESTS_OPTIONAL)
+    if unknown:
+        raise InvalidInput([Problem(source_name, None, k, "not a test condition") for k in unknown])
+    when = tested_at.isoformat(sep=" ") if isinstance(tested_at, datetime) else str(tested_at)
+    rows = [{"fleet_no": fleet_no.strip(), "tested_at": when.strip(), "hours": str(hours).strip(),
+             "kind": r.kind, "cylinder": "" if r.cylinder is None else str(r.cylinder),
+             "value": str(r.value).strip(), "units": r.units.strip(), **conditions}
+            for r in readings]
+    frame = pd.DataFrame(rows, columns=[*TESTS_REQUIRED, *TESTS_OPTIONAL]).fillna("")
+    frame.index = pd.RangeIndex(1, 1 + len(frame))
+    digest = hashlib.sha256(frame.to_csv().encode() + (by or "").encode()).hexdigest()
+    csv = CsvFile(name=source_name, kind="tests", frame=frame, sha256=digest)
+    report = import_csv(engine, csv, dry_run=dry_run, by=by, source=source)
+    if report.outcome == "dry_run":
+        return None
+    if report.outcome == "already_imported" or report.present:
+        raise InvalidInput([Problem(source_name, None, "tested_at",
+                                    f"unit {fleet_no} already has a test at {when} with "
+                                    f"{hours} h; nothing written")])
+    return report.test_ids[0]
+
+
+def void_test(engine: Engine, test_id: int, reason: str, by: str | None = None) -> None:
+    """Take a test out of the analysis. It stays in the store and in every history.
+
+    :param test_id: the test.
+    :param reason: why, in words (required).
+    :param by: who voids it (default: the operating-system user).
+    """
+    if not reason.strip():
+        raise FleetDBError("say why the test is voided (--reason)")
+    with engine.begin() as conn:
+        exists = conn.execute(text("SELECT id FROM test WHERE id = :id"), {"id": test_id}).scalar()
+        if exists is None:
+            raise FleetDBError(f"no test with id {test_id}")
+        already = conn.execute(text("SELECT reason FROM test_void WHERE test_id = :id"),
+                               {"id": test_id}).scalar()
+        if already is not None:
+            raise FleetDBError(f"test {test_id} is already voided ({already})")
+        conn.execute(text("INSERT INTO test_void (test_id, reason, voided_by, voided_at) "
+                          "VALUES (:id, :reason, :by, :at)"),
+                     {"id": test_id, "reason": reason.strip(), "by": by or current_user(),
+                      "at": stamp(conn)})

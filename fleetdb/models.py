@@ -1,0 +1,201 @@
+"""The store's tables (SQLModel). Alembic migrations in migrations/ create and change them.
+
+Values are kept in SI (kPa gauge, kPa below ambient, percent) beside the text the user
+typed and its unit. Nothing is deleted: a wrong test gets a :class:`TestVoid` row.
+"""
+
+from __future__ import annotations
+
+from datetime import UTC, date, datetime
+
+from sqlalchemy import (
+    CheckConstraint,
+    Column,
+    DateTime,
+    Index,
+    MetaData,
+    String,
+    UniqueConstraint,
+)
+from sqlmodel import Field, SQLModel
+
+# Named constraints from the first revision on, so SQLite batch migrations can drop them.
+SQLModel.metadata.naming_convention = {
+    "ix": "ix_%(column_0_label)s",
+    "uq": "uq_%(table_name)s_%(column_0_name)s",
+    "ck": "ck_%(table_name)s_%(constraint_name)s",
+    "fk": "fk_%(table_name)s_%(column_0_name)s_%(referred_table_name)s",
+    "pk": "pk_%(table_name)s",
+}
+metadata: MetaData = SQLModel.metadata
+
+FUELS = ("gasoline", "lpg", "cng", "diesel")
+READING_KINDS = ("compression", "wet", "leakdown", "relative", "vacuum_cranking", "vacuum_idle")
+CYLINDER_KINDS = ("compression", "wet", "leakdown", "relative")
+VACUUM_KINDS = ("vacuum_cranking", "vacuum_idle")
+EVENT_KINDS = (
+    "overhaul", "head", "valves", "rings", "throttle", "control_module", "hour_meter", "other",
+)
+SPREAD_RULES = ("ratio", "diff", "ratio_mean")
+SOURCES = ("form", "cli", "csv", "capture", "demo")
+
+
+def _in(column: str, values: tuple[str, ...]) -> str:
+    return f"{column} IN ({', '.join(repr(v) for v in values)})"
+
+
+def _utcnow() -> datetime:
+    return datetime.now(UTC).replace(microsecond=0)
+
+
+class Site(SQLModel, table=True):
+    """A depot or yard; its elevation gives the standard-atmosphere barometer."""
+
+    __tablename__ = "site"
+    id: int | None = Field(default=None, primary_key=True)
+    name: str = Field(sa_column=Column(String(80), unique=True, nullable=False))
+    elevation_m: float = Field(default=0.0)
+    created_at: datetime = Field(default_factory=_utcnow)
+
+
+class EngineFamily(SQLModel, table=True):
+    """Engines that share layout and limits; limits override fleetdb's defaults."""
+
+    __tablename__ = "engine_family"
+    __table_args__ = (
+        CheckConstraint(_in("fuel", FUELS), name="fuel"),
+        CheckConstraint("cylinders BETWEEN 1 AND 24", name="cylinders"),
+        CheckConstraint(_in("spread_rule", SPREAD_RULES), name="spread_rule"),
+        CheckConstraint("min_ratio > 0 AND min_ratio <= 1", name="min_ratio"),
+        CheckConstraint("compression_ratio > 1", name="compression_ratio"),
+    )
+    id: int | None = Field(default=None, primary_key=True)
+    name: str = Field(sa_column=Column(String(80), unique=True, nullable=False))
+    fuel: str = Field(sa_column=Column(String(16), nullable=False))
+    cylinders: int
+    banks: str = Field(sa_column=Column(String(120), nullable=False))
+    compression_ratio: float
+    min_compression_kpa: float
+    min_compression_typed: str = Field(sa_column=Column(String(32), nullable=False))
+    min_compression_unit: str = Field(sa_column=Column(String(8), nullable=False))
+    expected_kpa: float | None = None
+    spread_rule: str = Field(default="ratio", sa_column=Column(String(16), nullable=False))
+    min_ratio: float = 0.75
+    max_diff_kpa: float | None = None
+    min_crank_rpm: float | None = None
+    warm_test: bool = True
+    system_volts: int = 12
+    test_interval_days: int = 365
+    created_at: datetime = Field(default_factory=_utcnow)
+
+
+class Unit(SQLModel, table=True):
+    """One vehicle or machine, known by its fleet number."""
+
+    __tablename__ = "unit"
+    id: int | None = Field(default=None, primary_key=True)
+    fleet_no: str = Field(sa_column=Column(String(40), unique=True, nullable=False))
+    site_id: int = Field(foreign_key="site.id", index=True)
+    family_id: int = Field(foreign_key="engine_family.id", index=True)
+    in_service: date | None = None
+    hours_per_week: float | None = None
+    created_at: datetime = Field(default_factory=_utcnow)
+    created_by: str = Field(default="", sa_column=Column(String(80), nullable=False))
+
+
+class ImportBatch(SQLModel, table=True):
+    """One imported file: what it held and how the import ended."""
+
+    __tablename__ = "import_batch"
+    id: int | None = Field(default=None, primary_key=True)
+    file_name: str = Field(sa_column=Column(String(255), nullable=False))
+    content_sha256: str = Field(sa_column=Column(String(64), unique=True, nullable=False))
+    file_kind: str = Field(sa_column=Column(String(16), nullable=False))
+    rows_read: int = 0
+    rows_written: int = 0
+    rows_present: int = 0
+    outcome: str = Field(sa_column=Column(String(16), nullable=False))
+    created_at: datetime = Field(default_factory=_utcnow)
+    created_by: str = Field(default="", sa_column=Column(String(80), nullable=False))
+
+
+class Test(SQLModel, table=True):
+    """One session at the engine: when, hour meter, and the conditions of the test."""
+
+    __tablename__ = "test"
+    __table_args__ = (
+        UniqueConstraint("unit_id", "tested_at", "hours", name="uq_test_unit_time_hours"),
+        CheckConstraint("hours >= 0", name="hours"),
+        CheckConstraint(_in("source", SOURCES), name="source"),
+        Index("ix_test_unit_time", "unit_id", "tested_at"),
+    )
+    __test__ = False  # not a pytest class
+    id: int | None = Field(default=None, primary_key=True)
+    unit_id: int = Field(foreign_key="unit.id")
+    tested_at: datetime = Field(sa_column=Column(DateTime(), nullable=False))  # shop local time
+    hours: float
+    battery_v: float | None = None
+    crank_rpm: float | None = None
+    engine_temp_c: float | None = None
+    baro_kpa: float | None = None
+    throttle_open: bool | None = None
+    technician: str | None = Field(default=None, sa_column=Column(String(80)))
+    note: str | None = Field(default=None, sa_column=Column(String(2000)))
+    source: str = Field(sa_column=Column(String(16), nullable=False))
+    batch_id: int | None = Field(default=None, foreign_key="import_batch.id", index=True)
+    created_at: datetime = Field(default_factory=_utcnow)
+    created_by: str = Field(default="", sa_column=Column(String(80), nullable=False))
+
+
+class Reading(SQLModel, table=True):
+    """One measured value of a test, in SI beside the value and unit as typed."""
+
+    __tablename__ = "reading"
+    __table_args__ = (
+        CheckConstraint(_in("kind", READING_KINDS), name="kind"),
+        CheckConstraint(
+            f"(cylinder IS NULL AND {_in('kind', VACUUM_KINDS)}) OR "
+            f"(cylinder >= 1 AND {_in('kind', CYLINDER_KINDS)})",
+            name="cylinder",
+        ),
+        UniqueConstraint("test_id", "kind", "cylinder", name="uq_reading_test_kind_cylinder"),
+    )
+    id: int | None = Field(default=None, primary_key=True)
+    test_id: int = Field(foreign_key="test.id", index=True)
+    kind: str = Field(sa_column=Column(String(20), nullable=False))
+    cylinder: int | None = None
+    value_si: float
+    typed_value: str = Field(sa_column=Column(String(32), nullable=False))
+    typed_unit: str = Field(sa_column=Column(String(8), nullable=False))
+
+
+class ServiceEvent(SQLModel, table=True):
+    """Work on the engine that changes its condition (overhaul, head, valves...)."""
+
+    __tablename__ = "service_event"
+    __table_args__ = (
+        CheckConstraint(_in("kind", EVENT_KINDS), name="kind"),
+        UniqueConstraint("unit_id", "date", "kind", "cylinders", name="uq_service_event_key"),
+    )
+    id: int | None = Field(default=None, primary_key=True)
+    unit_id: int = Field(foreign_key="unit.id", index=True)
+    date: date
+    hours: float | None = None
+    kind: str = Field(sa_column=Column(String(20), nullable=False))
+    cylinders: str = Field(default="", sa_column=Column(String(80), nullable=False))
+    note: str | None = Field(default=None, sa_column=Column(String(2000)))
+    batch_id: int | None = Field(default=None, foreign_key="import_batch.id")
+    created_at: datetime = Field(default_factory=_utcnow)
+    created_by: str = Field(default="", sa_column=Column(String(80), nullable=False))
+
+
+class TestVoid(SQLModel, table=True):
+    """A test taken out of the analysis, with why, by whom and when. The test stays."""
+
+    __tablename__ = "test_void"
+    __test__ = False
+    id: int | None = Field(default=None, primary_key=True)
+    test_id: int = Field(foreign_key="test.id", unique=True)
+    reason: str = Field(sa_column=Column(String(500), nullable=False))
+    voided_by: str = Field(sa_column=Column(String(80), nullable=False))
+    voided_at: datetime = Field(default_factory=_utcnow)

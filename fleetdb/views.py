@@ -1,0 +1,136 @@
+"""Read-side views of the store for the CLI and the dashboard: plain dicts, JSON-ready."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import pandas as pd
+from sqlalchemy import text
+from sqlalchemy.engine import Engine
+
+from fleetdb import frames as frames_mod
+from fleetdb.errors import UnitNotFound
+from fleetdb.units import from_kpa
+
+PRESSURE_KINDS = ("compression", "wet")
+
+
+def _iso(value: Any) -> str | None:
+    if value is None or (not isinstance(value, str) and pd.isna(value)):
+        return None
+    if isinstance(value, pd.Timestamp):
+        return value.isoformat(sep=" ", timespec="minutes") if (value.hour or value.minute) \
+            else value.date().isoformat()
+    return value.isoformat() if hasattr(value, "isoformat") else str(value)
+
+
+def _text(value: Any) -> str | None:
+    return None if value is None or (not isinstance(value, str) and pd.isna(value)) else str(value)
+
+
+def _num(value: Any, digits: int = 1) -> float | None:
+    return None if value is None or pd.isna(value) else round(float(value), digits)
+
+
+def fleet_listing(engine: Engine) -> list[dict[str, Any]]:
+    """Every unit with its site, family and the date and hours of its last test."""
+    with engine.connect() as conn:
+        rows = conn.execute(text(
+            "SELECT u.fleet_no, s.name, f.name, f.fuel, f.cylinders, u.in_service, "
+            "u.hours_per_week, COUNT(t.id), MAX(t.tested_at), MAX(t.hours) "
+            "FROM unit u JOIN site s ON s.id = u.site_id "
+            "JOIN engine_family f ON f.id = u.family_id "
+            "LEFT JOIN test t ON t.unit_id = u.id GROUP BY u.id, u.fleet_no, s.name, f.name, "
+            "f.fuel, f.cylinders, u.in_service, u.hours_per_week ORDER BY u.fleet_no")).all()
+    return [{"fleet_no": r[0], "site": r[1], "engine_family": r[2], "fuel": r[3],
+             "cylinders": r[4], "in_service": _iso(r[5]), "hours_per_week": _num(r[6]),
+             "tests": r[7], "last_tested_at": _iso(pd.Timestamp(r[8]) if r[8] else None),
+             "last_hours": _num(r[9])} for r in rows]
+
+
+def unit_id_for(engine: Engine, fleet_no: str) -> int:
+    """The unit id of a fleet number, or :class:`UnitNotFound`."""
+    with engine.connect() as conn:
+        uid = conn.execute(text("SELECT id FROM unit WHERE fleet_no = :f"),
+                           {"f": fleet_no}).scalar()
+    if uid is None:
+        raise UnitNotFound(f"no unit with fleet number {fleet_no!r}; 'fleetdb units' lists them")
+    return int(uid)
+
+
+def unit_tests(engine: Engine, fleet_no: str, units: str = "psi") -> dict[str, Any]:
+    """A unit and every test of it, with readings in ``units`` (vacuum always in inHg and kPa).
+
+    :param fleet_no: the unit's fleet number.
+    :param units: psi, kPa or bar for compression values.
+    """
+    uid = unit_id_for(engine, fleet_no)
+    fr = frames_mod.load(engine, [uid])
+    unit = fr.units.loc[uid]
+    fam = fr.families.loc[unit["family_id"]]
+    tests = []
+    for test_id, t in fr.tests.iterrows():
+        rd = fr.readings[fr.readings["test_id"] == test_id]
+        values: dict[str, Any] = {}
+        for kind, group in rd.groupby("kind"):
+            if kind in PRESSURE_KINDS:
+                values[kind] = {str(int(c)): _num(from_kpa(v, units))
+                                for c, v in zip(group["cylinder"], group["value"], strict=True)}
+            elif kind in ("leakdown", "relative"):
+                values[kind] = {str(int(c)): _num(v)
+                                for c, v in zip(group["cylinder"], group["value"], strict=True)}
+            else:
+                values[kind] = {"inHg": _num(from_kpa(group["value"].iloc[0], "inHg")),
+                                "kPa": _num(group["value"].iloc[0])}
+        tests.append({
+            "test_id": int(test_id), "tested_at": _iso(t["tested_at"]), "hours": _num(t["hours"]),
+            "battery_v": _num(t["battery_v"]), "crank_rpm": _num(t["crank_rpm"], 0),
+            "engine_temp_c": _num(t["engine_temp_c"]), "baro_kpa": _num(t["baro_kpa"]),
+            "baro_measured": bool(t["baro_measured"]),
+            "throttle_open": None if pd.isna(t["throttle_open"]) else bool(t["throttle_open"]),
+            "technician": _text(t["technician"]), "note": _text(t["note"]), "source": t["source"],
+            "voided": bool(t["voided"]), "void_reason": _text(t["void_reason"]),
+            "readings": values})
+    return {
+        "fleet_no": fleet_no, "site": unit["site"], "site_elevation_m": _num(unit["elevation_m"]),
+        "engine_family": unit["family"], "fuel": fam["fuel"], "cylinders": int(fam["cylinders"]),
+        "banks": fam["banks"], "units": units,
+        "min_compression": _num(from_kpa(fam["min_compression_kpa"], units)),
+        "events": [{"date": _iso(e["date"]), "hours": _num(e["hours"]), "kind": e["kind"],
+                    "cylinders": list(e["cylinders"]), "note": _text(e["note"])}
+                   for _, e in fr.events.iterrows()],
+        "tests": tests,
+    }
+
+
+def latest_compression(engine: Engine, as_of: pd.Timestamp | None = None) -> list[dict[str, Any]]:
+    """Each unit's latest valid compression test: spread and whether it is under the minimum.
+
+    Values are normalised to sea level (see :mod:`fleetdb.atmosphere`) before comparing.
+    """
+    from fleetdb.atmosphere import compression_to_sea_level
+
+    fr = frames_mod.load(engine, as_of=as_of)
+    tests = fr.tests[~fr.tests["voided"]]
+    dry = fr.readings[(fr.readings["kind"] == "compression")
+                      & fr.readings["test_id"].isin(tests.index)]
+    if dry.empty:
+        return []
+    last_test = (tests.loc[tests.index.isin(dry["test_id"])].reset_index()
+                 .sort_values("tested_at").groupby("unit_id").last()["test_id"])
+    dry = dry[dry["test_id"].isin(last_test)].copy()
+    dry["norm"] = compression_to_sea_level(dry["value"], tests["baro_kpa"].reindex(dry["test_id"])
+                                           .to_numpy())
+    stats = dry.groupby("test_id")["norm"].agg(["min", "max"])
+    out = []
+    for unit_id, test_id in last_test.items():
+        unit = fr.units.loc[unit_id]
+        fam = fr.families.loc[unit["family_id"]]
+        lo, hi = stats.loc[test_id, "min"], stats.loc[test_id, "max"]
+        out.append({"fleet_no": unit["fleet_no"], "site": unit["site"],
+                    "engine_family": unit["family"], "test_id": int(test_id),
+                    "tested_at": _iso(tests.at[test_id, "tested_at"]),
+                    "lowest_kpa": _num(lo), "highest_kpa": _num(hi),
+                    "ratio": _num(lo / hi, 3), "min_ratio": _num(fam["min_ratio"], 3),
+                    "below_minimum": bool(lo < fam["min_compression_kpa"])})
+    return sorted(out, key=lambda r: (not r["below_minimum"], r["ratio"]))
