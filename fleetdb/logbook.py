@@ -57,7 +57,8 @@ def log_test(engine: Engine, fleet_no: str, tested_at: datetime | str, hours: fl
              "kind": r.kind, "cylinder": "" if r.cylinder is None else str(r.cylinder),
              "value": str(r.value).strip(), "units": r.units.strip(), **conditions}
             for r in readings]
-    frame = pd.DataFrame(rows, columns=[*TESTS_REQUIRED, *TESTS_OPTIONAL]).fillna("")
+    columns = [*TESTS_REQUIRED, *TESTS_OPTIONAL]
+    frame = pd.DataFrame([[row.get(c, "") for c in columns] for row in rows], columns=columns)
     frame.index = pd.RangeIndex(1, 1 + len(frame))
     digest = hashlib.sha256(frame.to_csv().encode() + (by or "").encode()).hexdigest()
     csv = CsvFile(name=source_name, kind="tests", frame=frame, sha256=digest)
