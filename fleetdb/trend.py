@@ -50,7 +50,7 @@ import pandas as pd
 from scipy import stats
 
 __all__ = [
-    "FLEET_COLUMNS", "crossing_hours", "dersimonian_laird", "detect_steps", "fit_fleet",
+    "FLEET_COLUMNS", "crossing_hours", "dersimonian_laird", "detect_steps",
     "fit_ols", "fit_ols_through_origin", "fit_theil_sen", "pool_slopes", "pooled_residual_sd",
     "project_crossings", "shrink",
 ]
@@ -61,13 +61,14 @@ ArrayLike = Sequence[float] | np.ndarray | pd.Series | pd.Index
 SHORT_SERIES_N = 5
 #: |Theil-Sen - OLS| above this many SE(OLS): Theil-Sen drives the projection. (b)
 THEIL_SEN_OUTLIER_SE = 2.0
-#: Columns of ``fit_fleet``'s result, in order.
+#: Columns of ``fleetfit.fit_fleet``'s result, in order.
 FLEET_COLUMNS = [
     "family", "n", "n_total", "steps", "last_step_x", "last_x", "limit",
     "ols_slope", "ols_intercept", "ols_se", "resid_sd", "resid_df", "noise_source",
     "ts_slope", "ts_intercept", "ts_low", "ts_high",
-    "pooled_slope", "pooled_se", "shrinkage", "family_mu", "family_tau2", "family_z",
-    "faster_than_family", "stray_reading", "slope", "slope_se", "slope_source",
+    "pooled_slope", "pooled_se", "shrinkage", "family_mu", "family_mu_se", "family_tau2",
+    "family_z", "family_noise_sd", "family_noise_df", "faster_than_family", "stray_reading",
+    "slope", "slope_se", "slope_source",
     "cross_point", "cross_planning", "cross_pi_early", "cross_pi_late", "cross_mean_early",
     "cross_mean_late",
 ]
@@ -548,132 +549,3 @@ def detect_steps(
         out[key] = column
     out["drop"] = out["expected"].to_numpy() - np.asarray(y, dtype=float)
     return out
-
-
-# --------------------------------------------------------------------------- engine
-
-
-def _stray_reading(
-    codes: np.ndarray, x: np.ndarray, y: np.ndarray, fit: dict[str, np.ndarray], alpha: float,
-) -> np.ndarray:
-    """Per series: a reading fails the Bonferroni test on externally studentised residuals."""
-    n, g = fit["n"].astype(float), len(fit["n"])
-    with np.errstate(divide="ignore", invalid="ignore"):
-        dx = x - fit["x_mean"][codes]
-        resid = y - fit["y_mean"][codes] - fit["slope"][codes] * dx
-        resid = np.where(np.abs(resid) > 1e-9 * (np.abs(y) + 1.0), resid, 0.0)  # rounding
-        keep = 1 - 1 / n[codes] - dx**2 / fit["sxx"][codes]  # 1 - leverage
-        s2 = np.maximum(fit["sse"][codes] - resid**2 / keep, 0.0) / (n[codes] - 3)
-        t_abs = np.nan_to_num(np.abs(resid) / np.sqrt(s2 * keep), nan=0.0, posinf=np.inf)
-        critical = stats.t.ppf(1 - alpha / (2 * n), np.where(n > 3, n - 3, np.nan))
-    return (n > 3) & (_group_max(codes, t_abs, g) > critical)
-
-
-
-def _family_noise(
-    codes: np.ndarray, segment: np.ndarray, x: np.ndarray, y: np.ndarray,
-    family_of_series: np.ndarray,
-) -> tuple[np.ndarray, np.ndarray]:
-    """Per series: its family's residual SD and df pooled over all segments with n >= 3."""
-    width = int(segment.max()) + 1
-    seg_codes, seg_keys = _factorize(codes * width + segment)
-    fits = _ols(seg_codes, x, y, len(seg_keys))
-    owner = seg_keys.to_numpy() // width
-    pooled = pooled_residual_sd(family_of_series[owner], fits["resid_sd"], fits["resid_df"])
-    pooled = pooled.reindex(np.arange(family_of_series.max() + 1))
-    return (pooled["resid_sd"].to_numpy(float)[family_of_series],
-            pooled["resid_df"].to_numpy(float)[family_of_series])
-
-
-def fit_fleet(
-    readings: pd.DataFrame, *, series: str = "series", group: str = "family_id",
-    x: str = "hours", y: str = "value", limit: str = "limit", confidence: float = 0.95,
-    short_n: int = SHORT_SERIES_N,
-) -> pd.DataFrame:
-    """Fit every series of the fleet: steps, OLS, Theil-Sen, pooling, projected crossings.
-
-    The rules are in the module docstring. Every row given is used: leave voided and
-    artefact-flagged tests out of ``readings``.
-
-    :param readings: one row per reading, with the columns named below.
-    :param series: column of the series key (e.g. one cylinder of one unit).
-    :param group: column of the pooling group (engine family), constant within a series.
-    :param x: column of engine hours.
-    :param y: column of the reading (compression, kPa).
-    :param limit: column of the lower limit (kPa), constant within a series.
-    :param confidence: level of intervals, projections and flags.
-    :param short_n: below this many readings in the current segment, the pooled slope.
-    :return: one row per series (index: series key) with ``FLEET_COLUMNS``: n (current
-        segment), n_total, steps, last_step_x; ols_* (current segment), resid_sd/resid_df
-        and noise_source (own, family, none); ts_* (Theil-Sen); pooled_slope, pooled_se,
-        shrinkage, family_mu, family_tau2, family_z, faster_than_family, stray_reading; slope,
-        slope_se and slope_source, and the crossing hours of ``project_crossings`` for them.
-    """
-    data = readings[[series, group, x, y, limit]]
-    data = data[data[series].notna() & np.isfinite(data[x]) & np.isfinite(data[y])]
-    if data[group].isna().any():
-        raise ValueError("every reading needs a group (engine family)")
-    if data.empty:
-        return pd.DataFrame(columns=FLEET_COLUMNS, index=pd.Index([], name=series))
-    codes, keys = _factorize(data[series])
-    g = len(keys)
-    xa, ya = data[x].to_numpy(float), data[y].to_numpy(float)
-    per_series = data.groupby(codes).agg(family=(group, "first"), families=(group, "nunique"),
-                                         limit=(limit, "first"), limits=(limit, "nunique"))
-    if (per_series["families"] > 1).any() or (per_series["limits"] > 1).any():
-        raise ValueError("group and limit must be constant within each series")
-    family, _ = _factorize(per_series["family"].to_numpy())
-
-    # Pass 1 judges with own noise only; its segments give the family noise for pass 2.
-    first_pass = detect_steps(codes, xa, ya, confidence=confidence)
-    noise_sd, noise_df = _family_noise(codes, first_pass["segment"].to_numpy(), xa, ya, family)
-    steps = detect_steps(codes, xa, ya, noise_sd=noise_sd[codes], noise_df=noise_df[codes],
-                         confidence=confidence)
-    segment = steps["segment"].to_numpy()
-    noise_sd, noise_df = _family_noise(codes, segment, xa, ya, family)
-
-    current = segment == _group_max(codes, segment, g)[codes]
-    fit = _ols(codes[current], xa[current], ya[current], g)
-    own = (fit["resid_df"] > 0) & np.isfinite(fit["resid_sd"])
-    resid_sd = np.where(own, fit["resid_sd"], noise_sd)
-    resid_df = np.where(own, fit["resid_df"], noise_df)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        ols_se = resid_sd / np.sqrt(fit["sxx"])
-    ts = fit_theil_sen(codes[current], xa[current], ya[current], confidence=confidence)
-    ts = ts.reindex(np.arange(g))
-    ts_slope, ts_intercept = ts["slope"].to_numpy(), ts["intercept"].to_numpy()
-    pool = pool_slopes(family, fit["slope"], ols_se)
-    faster = (pool["family_z"] < -stats.norm.ppf(confidence)).to_numpy()
-
-    short, has_ols = fit["n"] < short_n, np.isfinite(fit["slope"])
-    has_pool = np.isfinite(pool["family_tau2"] + pool["pooled_slope"]).to_numpy()
-    stray = _stray_reading(codes[current], xa[current], ya[current], fit, 1 - confidence)
-    shifted = np.abs(ts_slope - fit["slope"]) > THEIL_SEN_OUTLIER_SE * ols_se
-    outlier = ~short & has_ols & np.isfinite(ts_slope) & (stray | shifted)
-    source = np.select(
-        [short & has_ols & faster, short & has_pool, short & has_ols, outlier, has_ols],
-        ["ols_faster_than_family", "pooled_short", "ols_no_family", "theil_sen_outlier", "ols"],
-        default="none")
-    use_pool, use_ts = source == "pooled_short", source == "theil_sen_outlier"
-    slope = np.select([use_pool, use_ts], [pool["pooled_slope"], ts_slope], fit["slope"])
-    slope_se = np.where(use_pool, pool["pooled_se"], ols_se)
-    level = np.where(use_ts, ts_intercept + ts_slope * fit["x_mean"], fit["y_mean"])
-    limits = per_series["limit"].to_numpy(float)
-    projection = _projection(fit["x_mean"], level, slope, slope_se**2, resid_sd, resid_df,
-                             fit["n"], limits, confidence)
-
-    is_step = steps["step"].to_numpy()
-    out = pd.DataFrame({
-        "family": per_series["family"].to_numpy(), "n": fit["n"],
-        "n_total": np.bincount(codes, minlength=g),
-        "steps": np.bincount(codes[is_step], minlength=g),
-        "last_step_x": _group_max(codes[is_step], xa[is_step], g), "last_x": fit["last_x"],
-        "limit": limits, "ols_slope": fit["slope"], "ols_intercept": fit["intercept"],
-        "ols_se": ols_se, "resid_sd": resid_sd, "resid_df": resid_df,
-        "noise_source": np.where(own, "own", np.where(np.isfinite(noise_sd), "family", "none")),
-        "ts_slope": ts_slope, "ts_intercept": ts_intercept,
-        "ts_low": ts["low_slope"].to_numpy(), "ts_high": ts["high_slope"].to_numpy(),
-        "faster_than_family": faster, "stray_reading": stray, "slope": slope,
-        "slope_se": slope_se, "slope_source": source, **projection,
-    }, index=keys)
-    return pd.concat([out, pool.set_axis(keys)], axis=1)[FLEET_COLUMNS]

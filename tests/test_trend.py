@@ -17,7 +17,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import optimize, stats
 
-from fleetdb import trend
+from fleetdb import fleetfit, trend
 
 NIST = Path(__file__).parent / "fixtures" / "nist"
 CERTIFIED = tomllib.loads((NIST / "certified.toml").read_text())
@@ -388,7 +388,7 @@ def engine_fleet() -> pd.DataFrame:
 
 def test_engine_slope_sources() -> None:
     # Rules chosen here (b), documented in fleetdb/trend.py; invented data.
-    result = trend.fit_fleet(engine_fleet())
+    result = fleetfit.fit_fleet(engine_fleet())
     assert list(result.columns) == trend.FLEET_COLUMNS
     assert (result.loc[[f"u{i}" for i in range(10)], "slope_source"] == "ols").all()
     assert result.loc["stray", "slope_source"] == "theil_sen_outlier"
@@ -414,7 +414,7 @@ def test_engine_uses_theil_sen_for_a_stray_reading() -> None:
     stray_first = np.array([194.0, 158.0, 156.0, 154.0, 152.0])
     readings = pd.DataFrame({"series": 1, "family_id": 1, "hours": HOURS,
                              "value": stray_first, "limit": 100.0})
-    row = trend.fit_fleet(readings).loc[1]
+    row = fleetfit.fit_fleet(readings).loc[1]
     assert row["steps"] == 0 and row["stray_reading"]
     assert row["slope_source"] == "theil_sen_outlier" and row["slope"] == -0.002
     assert abs(row["ts_slope"] - row["ols_slope"]) < 2 * row["ols_se"]
@@ -424,7 +424,7 @@ def test_engine_uses_theil_sen_for_a_stray_reading() -> None:
 
 def test_engine_ols_projection_equals_project_crossings() -> None:
     readings = engine_fleet()
-    result = trend.fit_fleet(readings)
+    result = fleetfit.fit_fleet(readings)
     part = readings[readings["series"] == "u3"]
     fit = trend.fit_ols(part["series"], part["hours"], part["value"])
     cross = trend.project_crossings(fit, 900.0).iloc[0]
@@ -435,7 +435,7 @@ def test_engine_ols_projection_equals_project_crossings() -> None:
 def test_engine_pooled_projection_equals_brentq_root() -> None:
     # Reference: scipy.optimize.brentq on the one-sided band with the pooled slope variance.
     readings = engine_fleet()
-    row = trend.fit_fleet(readings).loc["short"]
+    row = fleetfit.fit_fleet(readings).loc["short"]
     part = readings[readings["series"] == "short"]
     x_bar, y_bar = part["hours"].mean(), part["value"].mean()
     q = stats.t.ppf(0.95, row["resid_df"])
@@ -454,7 +454,7 @@ def test_engine_restarts_the_fit_after_a_step() -> None:
     readings = engine_fleet()
     drop = (readings["series"] == "u0") & (readings["hours"] >= 5000)
     readings.loc[drop, "value"] -= 90
-    row = trend.fit_fleet(readings).loc["u0"]
+    row = fleetfit.fit_fleet(readings).loc["u0"]
     assert row["steps"] == 1 and row["last_step_x"] == 5000.0
     assert row["n"] == 3 and row["n_total"] == 8
     assert row["slope_source"] in ("pooled_short", "ols_faster_than_family")
@@ -464,7 +464,7 @@ def test_engine_rejects_a_series_in_two_families() -> None:
     readings = engine_fleet()
     readings.loc[0, "family_id"] = "B"
     with pytest.raises(ValueError, match="constant"):
-        trend.fit_fleet(readings)
+        fleetfit.fit_fleet(readings)
 
 
 # --------------------------------------------------------------------------- properties
@@ -540,7 +540,21 @@ def test_empty_input_and_a_series_tested_at_one_hour() -> None:
     readings = engine_fleet()
     one_hour = pd.DataFrame({"series": "same", "family_id": "A", "hours": 3000.0,
                              "value": [1040.0, 1036.0, 1041.0], "limit": 900.0})
-    row = trend.fit_fleet(pd.concat([readings, one_hour], ignore_index=True)).loc["same"]
+    row = fleetfit.fit_fleet(pd.concat([readings, one_hour], ignore_index=True)).loc["same"]
     assert np.isnan(row["ols_slope"]) and row["noise_source"] == "family"
     assert row["slope_source"] == "pooled_short" and row["shrinkage"] == 0.0
     assert row["slope"] == row["family_mu"]
+
+
+@pytest.mark.parametrize("one", ["short", "fast", "stray", "u3", "alone"])
+def test_one_series_with_stored_family_params_equals_whole_fleet(one: str) -> None:
+    # A one-unit refresh pools with the family statistics stored by the last full refresh:
+    # it must give the very numbers the full refresh gave (self-consistency, no source).
+    readings = engine_fleet()
+    full, points = fleetfit.fit_fleet(readings, return_points=True)
+    params = fleetfit.family_params(full)
+    subset = readings[readings["series"] == one]
+    alone, sub_points = fleetfit.fit_fleet(subset, family_params=params, return_points=True)
+    pd.testing.assert_series_equal(alone.loc[one], full.loc[one], check_names=False,
+                                   rtol=1e-12)
+    pd.testing.assert_frame_equal(sub_points, points.loc[subset.index])
