@@ -167,14 +167,12 @@ def import_(files: tuple[Path, ...], dry_run: bool, by: str | None, db: str | No
 
 
 def _refresh_after_write(engine: Any, unit_ids: list[int], dry_run: bool) -> None:
-    """Hook for the analysis to refresh the units a write touched."""
+    """Refresh this week's health of the units a write touched."""
     if dry_run or not unit_ids:
         return
-    try:
-        from fleetdb import health
-    except ImportError:
-        return
-    health.refresh_units(engine, unit_ids)
+    from fleetdb import health
+
+    health.refresh_units(engine, sorted(set(unit_ids)))
 
 
 def _cylinder_values(kind: str, text: str | None, default_unit: str) -> list[Any]:
@@ -319,29 +317,52 @@ def units(as_json: bool, db: str | None) -> None:
                        ("last_hours", "hours")])
 
 
+LEVEL_MARK = {"act": "[!] act", "plan": "[>] plan", "retest": "[?] retest",
+              "watch": "[~] watch", "sound": "[ ] sound"}
+
+
 @cli.command()
 @click.argument("fleet_no")
 @click.option("--units", "unit", default="psi", show_default=True,
               type=click.Choice(["psi", "kPa", "bar"]), help="Unit for compression values.")
+@as_of_option
 @json_option
 @db_option
 @friendly_errors
-def unit(fleet_no: str, unit: str, as_json: bool, db: str | None) -> None:
-    """Show one unit: its engine family and every test with its readings.
+def unit(fleet_no: str, unit: str, as_of: Any, as_json: bool, db: str | None) -> None:
+    """Show one unit: health level and reasons, wear per cylinder, every test.
 
     \b
     Example:
         fleetdb unit LT-07 --units kPa
     """
-    from fleetdb import views
+    from fleetdb import health, views
 
-    data = views.unit_tests(_engine(db), fleet_no, unit)
+    engine = _engine(db)
+    data = views.unit_tests(engine, fleet_no, unit)
+    report = health.unit_report(engine, fleet_no, None if as_of is None else as_of.date())
+    data["health"] = views.health_summary(report, unit)
     if as_json:
         print_json(data)
         return
+    h = data["health"]
     click.echo(f"{data['fleet_no']}  {data['engine_family']} ({data['fuel']}, "
                f"{data['cylinders']} cyl, banks {data['banks']})  site {data['site']} "
                f"({data['site_elevation_m']:g} m)  minimum {data['min_compression']} {unit}")
+    click.echo(f"Health: {LEVEL_MARK[h['level']]}   projected limit: "
+               f"{h['projected_date_early'] or 'none'} (conservative), "
+               f"{h['projected_date'] or 'none'} (best estimate)")
+    for r in h["reasons"]:
+        click.echo(f"  {r['level']:<6} {r['code']}: {r['text']}")
+    wear = [{"cyl": f["cylinder"], "n": f["n"], "slope": f["wear_per_1000h"],
+             "method": f["method"], "cross": f["projected_hours_early"]}
+            for f in h["wear"]]
+    if wear:
+        click.echo("")
+        print_table(wear, [("cyl", "cylinder"), ("n", "tests"),
+                           ("slope", f"wear {unit}/1000 h"), ("method", "slope used"),
+                           ("cross", "limit at h (95 %)")])
+    click.echo("")
     rows = []
     for t in data["tests"]:
         r = t["readings"]
@@ -351,7 +372,8 @@ def unit(fleet_no: str, unit: str, as_json: bool, db: str | None) -> None:
             "wet": " ".join(f"{c}:{v:g}" for c, v in r.get("wet", {}).items()),
             "vac": (r.get("vacuum_cranking") or {}).get("inHg"),
             "v": t["battery_v"], "rpm": t["crank_rpm"],
-            "state": f"voided: {t['void_reason']}" if t["voided"] else ""})
+            "state": f"voided: {t['void_reason']}" if t["voided"] else
+            ("" if h["trust"].get(str(t["test_id"]), True) else "not trustworthy")})
     print_table(rows, [("id", "test"), ("tested_at", "tested at"), ("hours", "hours"),
                        ("compression", f"compression ({unit})"), ("wet", "wet"),
                        ("vac", "crank vac inHg"), ("v", "volts"), ("rpm", "rpm"),
@@ -363,29 +385,62 @@ def unit(fleet_no: str, unit: str, as_json: bool, db: str | None) -> None:
 
 @cli.command()
 @as_of_option
+@click.option("--site", help="Only this site.")
+@click.option("--family", help="Only this engine family.")
+@click.option("--level", type=click.Choice(["act", "plan", "retest", "watch", "sound"]),
+              help="Only this level.")
+@click.option("--search", help="Fleet numbers containing this text.")
 @json_option
 @db_option
 @friendly_errors
-def board(as_of: Any, as_json: bool, db: str | None) -> None:
-    """The fleet's latest state: each unit's latest valid compression test, worst first.
+def board(as_of: Any, site: str | None, family: str | None, level: str | None,
+          search: str | None, as_json: bool, db: str | None) -> None:
+    """The weekly health board: every unit's level and main reason, worst first.
 
     \b
     Example:
-        fleetdb board --as-of 2026-06-30
+        fleetdb board --site "North Yard" --level plan
     """
-    from fleetdb import views
+    from fleetdb import health
 
-    rows = views.latest_compression(_engine(db), _end_of(as_of))
+    data = health.board(_engine(db), None if as_of is None else as_of.date(), site=site,
+                        family=family, level=level, search=search)
     if as_json:
-        print_json(rows)
+        print_json(data)
         return
-    for r in rows:
-        r["state"] = "below minimum" if r["below_minimum"] else (
-            "spread" if r["ratio"] < r["min_ratio"] else "")
+    counts = "  ".join(f"{LEVEL_MARK[k]}: {v}" for k, v in data["counts"].items())
+    click.echo(f"Week of {data['week_start']} (as of {data['as_of']})   {counts}")
+    rows = [{**r, "level": LEVEL_MARK[r["level"]],
+             "reason": (r["main_text"] or "")[:70] + ("..." if len(r["main_text"] or "") > 70
+                                                     else ""),
+             "change": {"worse": f"worse (was {r['previous_level']})",
+                        "better": f"better (was {r['previous_level']})",
+                        "new": "new"}.get(r["change"] or "", "")}
+            for r in data["rows"]]
     print_table(rows, [("fleet_no", "fleet no"), ("site", "site"),
-                       ("engine_family", "engine family"), ("tested_at", "last test"),
-                       ("lowest_kpa", "lowest kPa"), ("highest_kpa", "highest kPa"),
-                       ("ratio", "low/high"), ("state", "state")])
+                       ("engine_family", "engine family"), ("level", "level"),
+                       ("reason", "main reason"), ("projected_date_early", "limit by"),
+                       ("hours_to_limit", "hours left"), ("last_tested_at", "last test"),
+                       ("change", "since last week")])
+
+
+@cli.command()
+@as_of_option
+@db_option
+@friendly_errors
+def refresh(as_of: Any, db: str | None) -> None:
+    """Recompute every unit's health and store the week's snapshot.
+
+    \b
+    Example:
+        fleetdb refresh --as-of 2026-06-30
+    """
+    from fleetdb import health
+
+    result = health.refresh_fleet(_engine(db), None if as_of is None else as_of.date())
+    counts = ", ".join(f"{k} {v}" for k, v in result["counts"].items())
+    click.echo(f"Refreshed {result['units']} units for the week of {result['week_start']}: "
+               f"{counts}")
 
 
 @cli.command()

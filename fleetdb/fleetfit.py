@@ -74,7 +74,8 @@ def _family_noise(
 def fit_fleet(
     readings: pd.DataFrame, *, series: str = "series", group: str = "family_id",
     x: str = "hours", y: str = "value", limit: str = "limit", confidence: float = 0.95,
-    short_n: int = SHORT_SERIES_N, family_params: pd.DataFrame | None = None,
+    short_n: int = SHORT_SERIES_N, step_confidence: str | None = None,
+    min_drop: str | None = None, family_params: pd.DataFrame | None = None,
     return_points: bool = False,
 ) -> pd.DataFrame | tuple[pd.DataFrame, pd.DataFrame]:
     """Fit every series of the fleet: steps, OLS, Theil-Sen, pooling, projected crossings.
@@ -90,6 +91,9 @@ def fit_fleet(
     :param limit: column of the lower limit (kPa), constant within a series.
     :param confidence: level of intervals, projections and flags.
     :param short_n: below this many readings in the current segment, the pooled slope.
+    :param step_confidence: column of a per-reading two-sided level for step detection
+        (None: ``confidence``), e.g. Bonferroni over the cylinders of a test.
+    :param min_drop: column of the least fall below the line that counts as a step.
     :param family_params: stored statistics per group (:func:`family_params`); groups found
         there are pooled with them instead of with the series given.
     :param return_points: also return the per-reading step judgement (``detect_steps``
@@ -100,7 +104,8 @@ def fit_fleet(
         shrinkage, family_mu, family_tau2, family_z, faster_than_family, stray_reading; slope,
         slope_se and slope_source, and the crossing hours of ``project_crossings`` for them.
     """
-    data = readings[[series, group, x, y, limit]]
+    extra = [c for c in (step_confidence, min_drop) if c]
+    data = readings[[series, group, x, y, limit, *extra]]
     data = data[data[series].notna() & np.isfinite(data[x]) & np.isfinite(data[y])]
     if data[group].isna().any():
         raise ValueError("every reading needs a group (engine family)")
@@ -112,6 +117,8 @@ def fit_fleet(
     codes, keys = _factorize(data[series])
     g = len(keys)
     xa, ya = data[x].to_numpy(float), data[y].to_numpy(float)
+    step_level = data[step_confidence].to_numpy(float) if step_confidence else confidence
+    step_drop = data[min_drop].to_numpy(float) if min_drop else 0.0
     per_series = data.groupby(codes).agg(family=(group, "first"), families=(group, "nunique"),
                                          limit=(limit, "first"), limits=(limit, "nunique"))
     if (per_series["families"] > 1).any() or (per_series["limits"] > 1).any():
@@ -121,11 +128,11 @@ def fit_fleet(
         np.arange(len(family_keys)))
 
     # Pass 1 judges with own noise only; its segments give the family noise for pass 2.
-    first_pass = detect_steps(codes, xa, ya, confidence=confidence)
+    first_pass = detect_steps(codes, xa, ya, confidence=step_level, min_drop=step_drop)
     noise_sd, noise_df = _family_noise(codes, first_pass["segment"].to_numpy(), xa, ya, family,
                                        external)
     steps = detect_steps(codes, xa, ya, noise_sd=noise_sd[codes], noise_df=noise_df[codes],
-                         confidence=confidence)
+                         confidence=step_level, min_drop=step_drop)
     segment = steps["segment"].to_numpy()
     noise_sd, noise_df = _family_noise(codes, segment, xa, ya, family, external)
 
@@ -142,6 +149,13 @@ def fit_fleet(
     pool = pool_slopes(family, fit["slope"], ols_se)
     if external is not None:
         pool = _pool_with(pool, external, family, fit["slope"], ols_se)
+    # A short series' own s rests on one or two degrees of freedom and can be tiny by luck:
+    # judge "faster than the family" with the larger of its own and the family-noise SE.
+    with np.errstate(divide="ignore", invalid="ignore"):
+        se_family = noise_sd / np.sqrt(fit["sxx"])
+        se_guarded = np.where(fit["n"] < short_n, np.fmax(ols_se, se_family), ols_se)
+        pool["family_z"] = (fit["slope"] - pool["family_mu"].to_numpy()) / np.sqrt(
+            se_guarded**2 + pool["family_tau2"].to_numpy())
     faster = (pool["family_z"] < -stats.norm.ppf(confidence)).to_numpy()
 
     short, has_ols = fit["n"] < short_n, np.isfinite(fit["slope"])

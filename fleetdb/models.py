@@ -15,6 +15,7 @@ from sqlalchemy import (
     Index,
     MetaData,
     String,
+    Text,
     UniqueConstraint,
 )
 from sqlmodel import Field, SQLModel
@@ -199,3 +200,58 @@ class TestVoid(SQLModel, table=True):
     reason: str = Field(sa_column=Column(String(500), nullable=False))
     voided_by: str = Field(sa_column=Column(String(80), nullable=False))
     voided_at: datetime = Field(default_factory=_utcnow)
+
+
+LEVELS = ("act", "plan", "retest", "watch", "sound")
+
+
+class HealthSnapshot(SQLModel, table=True):
+    """A unit's health level and reasons for one week, so the board can say what changed."""
+
+    __tablename__ = "health_snapshot"
+    __table_args__ = (
+        UniqueConstraint("unit_id", "week_start", name="uq_health_snapshot_unit_week"),
+        CheckConstraint(_in("level", LEVELS), name="level"),
+        Index("ix_health_snapshot_week_level", "week_start", "level"),
+    )
+    id: int | None = Field(default=None, primary_key=True)
+    unit_id: int = Field(foreign_key="unit.id")
+    week_start: date
+    as_of: date
+    level: str = Field(sa_column=Column(String(8), nullable=False))
+    main_code: str | None = Field(default=None, sa_column=Column(String(40)))
+    main_text: str | None = Field(default=None, sa_column=Column(String(500)))
+    reasons_json: str = Field(default="[]", sa_column=Column(Text(), nullable=False))
+    last_test_id: int | None = Field(default=None, foreign_key="test.id")
+    last_tested_at: datetime | None = Field(default=None, sa_column=Column(DateTime()))
+    last_hours: float | None = None
+    projected_hours: float | None = None
+    projected_hours_early: float | None = None
+    projected_date: date | None = None
+    projected_date_early: date | None = None
+    wear_kpa_per_1000h: float | None = None
+    computed_at: datetime = Field(default_factory=_utcnow)
+
+
+class FamilyWear(SQLModel, table=True):
+    """A family's pooled wear statistics from the last full refresh (for one-unit refreshes)."""
+
+    __tablename__ = "family_wear"
+    __table_args__ = (
+        UniqueConstraint("family_id", "week_start", name="uq_family_wear_family_week"),
+    )
+    id: int | None = Field(default=None, primary_key=True)
+    family_id: int = Field(foreign_key="engine_family.id")
+    week_start: date
+    mean_slope: float | None = None  # kPa per hour, sea-level equivalent
+    mean_slope_se: float | None = None
+    tau2: float | None = None  # between-series variance of slopes
+    pooled_sd: float | None = None  # test noise, kPa
+    pooled_df: float | None = None
+    spread_mean_slope: float | None = None  # the same for the lowest/highest ratio
+    spread_mean_slope_se: float | None = None
+    spread_tau2: float | None = None
+    spread_pooled_sd: float | None = None
+    spread_pooled_df: float | None = None
+    n_series: int = 0
+    computed_at: datetime = Field(default_factory=_utcnow)

@@ -456,7 +456,7 @@ def pooled_residual_sd(group: ArrayLike, resid_sd: ArrayLike, resid_df: ArrayLik
 
 def _judge_blocks(
     xs: np.ndarray, ys: np.ndarray, work: np.ndarray, block: np.ndarray,
-    noise_sd: np.ndarray, noise_df: np.ndarray, t_level: float,
+    noise_sd: np.ndarray, noise_df: np.ndarray, t_level: np.ndarray, min_drop: np.ndarray,
 ) -> dict[str, np.ndarray]:
     """Judge each working reading against the OLS fit of the earlier readings of its block."""
     xc, yc = xs[work] - xs[block], ys[work] - ys[block]  # centred on the block's first reading
@@ -472,19 +472,21 @@ def _judge_blocks(
         sse = np.maximum(syy - slope * sxy, 0.0)
         sd = np.where(m >= 3, np.sqrt(sse / (m - 2)), np.where(m == 2, noise_sd[work], np.nan))
         df = np.where(m >= 3, m - 2, np.where(m == 2, noise_df[work], np.nan))
-        half = stats.t.ppf(t_level, np.where(df > 0, df, np.nan)) * sd * np.sqrt(
+        half = stats.t.ppf(t_level[work], np.where(df > 0, df, np.nan)) * sd * np.sqrt(
             1 + 1 / m + (xc - x_bar) ** 2 / sxx)
     lower = expected - half
     judged = (m >= 2) & (sxx > 0) & np.isfinite(lower)
     # The tolerance keeps rounding noise on exactly collinear data from counting as a step.
-    step = judged & (yc < lower - 1e-9 * (np.abs(ys[work]) + 1.0))
+    step = (judged & (yc < lower - 1e-9 * (np.abs(ys[work]) + 1.0))
+            & (expected - yc >= min_drop[work]))
     return {"n_before": m, "judged": judged, "step": step,
             "expected": expected + ys[block], "lower_bound": lower + ys[block]}
 
 
 def detect_steps(
     series: ArrayLike, x: ArrayLike, y: ArrayLike, *, noise_sd: ArrayLike | None = None,
-    noise_df: ArrayLike | None = None, confidence: float = 0.95,
+    noise_df: ArrayLike | None = None, confidence: float | ArrayLike = 0.95,
+    min_drop: float | ArrayLike = 0.0,
 ) -> pd.DataFrame:
     """Flag sudden drops: readings below the prediction band of their segment's earlier fit.
 
@@ -500,7 +502,10 @@ def detect_steps(
     :param y: reading per reading.
     :param noise_sd: per reading, the noise SD for judging after 2 readings (None: not judged).
     :param noise_df: per reading, the degrees of freedom of ``noise_sd``.
-    :param confidence: two-sided level of the prediction interval (D11: 0.95).
+    :param confidence: two-sided level of the prediction interval (D11: 0.95), one value or
+        one per reading.
+    :param min_drop: a step must also fall at least this far below the line (one value or
+        one per reading): statistically and practically beyond the test noise.
     :return: per input row: segment (0, 1, ... within the series, -1 for unusable rows),
         step, judged, n_before (readings in the fit), expected, lower_bound and drop
         (expected - y, positive below the line).
@@ -509,9 +514,13 @@ def detect_steps(
     n_rows = len(np.asarray(y))
     sd_all = np.full(n_rows, np.nan) if noise_sd is None else np.asarray(noise_sd, dtype=float)
     df_all = np.full(n_rows, np.nan) if noise_df is None else np.asarray(noise_df, dtype=float)
+    level_all = np.broadcast_to(np.asarray(confidence, dtype=float), (n_rows,))
+    drop_all = np.broadcast_to(np.asarray(min_drop, dtype=float), (n_rows,))
     order = np.lexsort((rows, xa, codes))
     src = rows[order]
     c, xs, ys, sd_sorted, df_sorted = codes[order], xa[order], ya[order], sd_all[src], df_all[src]
+    t_sorted = 1 - (1 - level_all[src]) / 2
+    drop_sorted = drop_all[src]
     n = len(c)
     positions = np.arange(n)
     first_of_series = np.r_[True, c[1:] != c[:-1]][:n]
@@ -523,8 +532,7 @@ def detect_steps(
     work = positions
     while work.size:
         block = seg_start[work]
-        check = _judge_blocks(xs, ys, work, block, sd_sorted, df_sorted,
-                              1 - (1 - confidence) / 2)
+        check = _judge_blocks(xs, ys, work, block, sd_sorted, df_sorted, t_sorted, drop_sorted)
         flagged = work[check["step"]]
         blocks_hit, first = np.unique(block[check["step"]], return_index=True)
         cut = np.full(n, n)  # per block start: position of its first step (n: none)

@@ -134,3 +134,35 @@ def latest_compression(engine: Engine, as_of: pd.Timestamp | None = None) -> lis
                     "ratio": _num(lo / hi, 3), "min_ratio": _num(fam["min_ratio"], 3),
                     "below_minimum": bool(lo < fam["min_compression_kpa"])})
     return sorted(out, key=lambda r: (not r["below_minimum"], r["ratio"]))
+
+
+def health_summary(report: dict[str, Any], units: str = "psi") -> dict[str, Any]:
+    """The health part of ``fleetdb unit --json``, from :func:`fleetdb.health.unit_report`.
+
+    :param report: a unit report (kPa inside).
+    :param units: psi, kPa or bar for wear rates.
+    """
+    wear = []
+    for f in report["fits"]:
+        if not f["current"] or f["cylinder"] == "spread":
+            continue
+        slope = f["slope_used"]
+        wear.append({
+            "cylinder": f["cylinder"], "n": f["n"], "method": f["method"],
+            "wear_per_1000h": None if slope is None else _num(from_kpa(-slope * 1000, units), 2),
+            "wear_ols_per_1000h": None if f["slope_ols"] is None
+            else _num(from_kpa(-f["slope_ols"] * 1000, units), 2),
+            "wear_theil_sen_per_1000h": None if f["slope_theil_sen"] is None
+            else _num(from_kpa(-f["slope_theil_sen"] * 1000, units), 2),
+            "faster_than_family": f["faster_than_family"],
+            "projected_hours": _num(f["projected_hours"], 0),
+            "projected_hours_early": _num(f["projected_hours_early"], 0)})
+    return {
+        "level": report["level"], "main_code": report["main_code"],
+        "reasons": report["reasons"], "projected_date": report["projected_date"],
+        "projected_date_early": report["projected_date_early"],
+        "projected_hours": _num(report["projected_hours"], 0),
+        "projected_hours_early": _num(report["projected_hours_early"], 0),
+        "hours_per_week": _num(report["unit"]["hours_per_week"]), "units": units,
+        "wear": wear, "trust": {str(t["test_id"]): t["trustworthy"] for t in report["tests"]},
+    }

@@ -1,0 +1,438 @@
+"""From checks and trends to one health level per unit, with the reasons behind it. Pure.
+
+Levels, worst first (design.md): ``act`` a limit is crossed on a trustworthy test;
+``plan`` projected to cross within the planning horizon; ``retest`` the latest test is not
+trustworthy, or a test is overdue; ``watch`` wearing faster than its family, a sudden drop,
+close to a limit, or a pattern worth following; ``sound``.
+
+Rules chosen here (b, common practice, no published source):
+
+* The judged test is the latest trustworthy, non-voided test since the last overhaul-type
+  event; its limit findings make ``act``. A later untrustworthy test asks for a retest but
+  never clears or raises ``act`` on its own.
+* Wear series: one per unit, cylinder and event segment; an ``overhaul`` restarts every
+  cylinder, ``head``/``valves``/``rings`` the cylinders they name (all when none named).
+  Only trustworthy, non-voided dry tests enter a fit.
+* The spread is projected like a cylinder: the lowest/highest ratio per test against hours,
+  limit = the family's ``min_ratio`` (for the ``ratio`` rule).
+* A unit's projected crossing is the earliest over its current cylinder series and spread;
+  ``plan`` when the conservative (one-sided 95 % prediction) crossing falls within the
+  horizon. Hours become dates with the unit's own hours per week (last year of tests), else
+  the fleet file's figure.
+* ``near_minimum``: the judged test's lowest cylinder within 10 % above the minimum.
+* Many cylinders, many chances: a sudden drop uses D11's 95 % level for the whole test
+  (Bonferroni over its k cylinders: 1 - 0.05/k per cylinder) and must also fall at least
+  10 % of the family minimum below the line (0.05 for the ratio), so that test noise on
+  one of six cylinders is not called a step; "faster than the family" likewise needs one
+  cylinder beyond the one-sided 1 - 0.05/k level.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from fleetdb import checks, fleetfit
+from fleetdb.frames import Frames
+from fleetdb.units import KPA_PER_UNIT
+
+LEVELS = ("act", "plan", "retest", "watch", "sound")
+LEVEL_RANK = {lvl: i for i, lvl in enumerate(LEVELS)}
+RESET_KINDS = ("overhaul", "head", "valves", "rings")
+NEAR_MINIMUM_FRACTION = 1.10  # (b) watch within 10 % above the minimum
+FAMILY_ALPHA = 0.05  # D11 / faster-than-family level for a whole test or unit (b/c)
+MIN_DROP_FRACTION = 0.10  # (b) a step falls at least 10 % of the minimum below the line
+MIN_DROP_RATIO = 0.05  # (b) the same for the lowest/highest ratio
+HORIZON_WEEKS = 13
+ARTEFACT_CODES = ("weak_battery", "slow_cranking", "cold_engine", "intake_restriction",
+                  "all_low_restriction", "all_low_artefact")
+WATCH_PATTERNS = ("single_low", "adjacent_pair_low", "non_adjacent_pair_low", "pair_low",
+                  "all_low_wear", "rings_suspected", "valves_suspected", "leakdown_worn",
+                  "leakdown_fail", "leakdown_above_median", "relative_low", "idle_vacuum_low",
+                  "wet_test_on_diesel")
+SERIES_STRIDE = 100_000  # series key = unit * stride + cylinder * 1000 + event segment
+SPREAD_CYLINDER = 99  # pseudo-cylinder of the spread series
+
+#: Reason codes health adds to those of :mod:`fleetdb.checks`.
+HEALTH_CODES = {
+    "sudden_drop": "a reading fell far below the cylinder's own trend: confirm by retest",
+    "projected_limit": "the wear trend reaches a limit within the planning horizon",
+    "wear_faster_than_family": "wearing significantly faster than its engine family",
+    "near_minimum": "the lowest cylinder is within 10 % of the minimum",
+    "test_overdue": "no test within the family's test interval",
+    "no_test": "the unit has never been tested",
+    "retest_untrustworthy": "the latest test is not trustworthy: retest",
+}
+
+
+@dataclass
+class Assessment:
+    """Everything health computed for a set of units as of one moment."""
+
+    as_of: pd.Timestamp
+    units: pd.DataFrame  # index unit_id: level, main_code, main_text, projections...
+    reasons: pd.DataFrame  # unit_id, code, level, text, numbers, test_id
+    checks: checks.CheckResult
+    points: pd.DataFrame  # dry readings with series, in_fit, step, value_sl
+    fits: pd.DataFrame  # per series (trend.fit_fleet) plus unit_id, cylinder, segment
+    family_params: pd.DataFrame  # per family: pooled wear statistics
+
+
+def _psi(kpa: float) -> str:
+    return f"{kpa:.0f} kPa ({kpa / KPA_PER_UNIT['psi']:.0f} psi)"
+
+
+def _event_segments(points: pd.DataFrame, events: pd.DataFrame,
+                    cylinders: pd.Series) -> np.ndarray:
+    """Per reading, how many condition-resetting events touched its cylinder before it."""
+    ev = events[events["kind"].isin(RESET_KINDS)]
+    if ev.empty or points.empty:
+        return np.zeros(len(points), dtype=int)
+    rows = []
+    for unit_id, day, kind, cyls in zip(ev["unit_id"], ev["date"], ev["kind"], ev["cylinders"],
+                                        strict=True):
+        count = int(cylinders.get(unit_id, 0))
+        touched = range(1, count + 1) if kind == "overhaul" or not cyls else cyls
+        rows += [(unit_id, c, day) for c in touched]
+        rows.append((unit_id, SPREAD_CYLINDER, day))
+    table = pd.DataFrame(rows, columns=["unit_id", "cylinder", "date"]).sort_values("date")
+    table["n_events"] = table.groupby(["unit_id", "cylinder"]).cumcount() + 1
+    left = points[["unit_id", "cylinder", "tested_at"]].assign(_row=np.arange(len(points)))
+    left["cylinder"] = left["cylinder"].astype(int)
+    table["cylinder"] = table["cylinder"].astype(int)
+    merged = pd.merge_asof(left.sort_values("tested_at"), table, left_on="tested_at",
+                           right_on="date", by=["unit_id", "cylinder"], direction="backward")
+    out = np.zeros(len(points), dtype=int)
+    out[merged["_row"].to_numpy()] = merged["n_events"].fillna(0).to_numpy(dtype=int)
+    return out
+
+
+def _hours_per_week(fr: Frames, as_of: pd.Timestamp) -> pd.Series:
+    """Each unit's recent utilisation: hours per week over its last year of tests."""
+    t = fr.tests[~fr.tests["voided"]]
+    recent = t[t["tested_at"] >= as_of - pd.Timedelta(days=400)]
+    g = recent.groupby("unit_id").agg(h0=("hours", "min"), h1=("hours", "max"),
+                                      t0=("tested_at", "min"), t1=("tested_at", "max"))
+    weeks = (g["t1"] - g["t0"]).dt.total_seconds() / (7 * 86400)
+    own = ((g["h1"] - g["h0"]) / weeks).where(weeks >= 8)
+    declared = fr.units["hours_per_week"].astype(float)
+    return own.reindex(fr.units.index).fillna(declared).where(lambda s: s > 0)
+
+
+def _jsonable(value: Any) -> Any:
+    if isinstance(value, dict):
+        return {k: _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple, np.ndarray)):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, (np.integer,)):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        return None if not np.isfinite(value) else round(float(value), 4)
+    if isinstance(value, (np.bool_,)):
+        return bool(value)
+    if isinstance(value, pd.Timestamp):
+        return value.isoformat()
+    return value
+
+
+def _series_points(fr: Frames, res: checks.CheckResult, as_of: pd.Timestamp) -> pd.DataFrame:
+    """Dry compression readings and per-test spread, keyed into wear series."""
+    tests, fams = fr.tests, fr.families
+    rd = fr.readings[fr.readings["kind"] == "compression"]
+    t = tests.reindex(rd["test_id"].to_numpy())
+    pts = pd.DataFrame({
+        "test_id": rd["test_id"].to_numpy(), "unit_id": t["unit_id"].to_numpy(),
+        "family_id": t["family_id"].to_numpy(), "tested_at": t["tested_at"].to_numpy(),
+        "hours": t["hours"].to_numpy(), "cylinder": rd["cylinder"].to_numpy(dtype=float),
+        "value_kpa": rd["value"].to_numpy(),
+        "value_sl": rd["value"].to_numpy() * (101.325 / t["baro_kpa"].to_numpy()),
+        "voided": t["voided"].to_numpy(dtype=bool),
+        "trustworthy": res.tests["trustworthy"].reindex(rd["test_id"].to_numpy())
+        .fillna(False).to_numpy(dtype=bool)})
+    pts["limit"] = fams["min_compression_kpa"].reindex(pts["family_id"]).to_numpy(float)
+    ratio_fams = fams.index[fams["spread_rule"] == "ratio"]
+    summ = res.tests.join(tests[["unit_id", "family_id", "tested_at", "hours", "voided"]])
+    summ = summ[summ["dry_ratio"].notna() & summ["family_id"].isin(ratio_fams)]
+    spread = pd.DataFrame({
+        "test_id": summ.index.to_numpy(), "unit_id": summ["unit_id"].to_numpy(),
+        "family_id": summ["family_id"].to_numpy(), "tested_at": summ["tested_at"].to_numpy(),
+        "hours": summ["hours"].to_numpy(), "cylinder": float(SPREAD_CYLINDER),
+        "value_kpa": np.nan, "value_sl": summ["dry_ratio"].to_numpy(float),
+        "voided": summ["voided"].to_numpy(dtype=bool),
+        "trustworthy": summ["trustworthy"].to_numpy(dtype=bool)})
+    spread["limit"] = fams["min_ratio"].reindex(spread["family_id"]).to_numpy(float)
+    pts = pd.concat([pts, spread], ignore_index=True)
+    pts["in_fit"] = pts["trustworthy"] & ~pts["voided"]
+    is_spread = pts["cylinder"].to_numpy() == SPREAD_CYLINDER
+    k = fams["cylinders"].reindex(pts["family_id"]).to_numpy(float)
+    pts["step_level"] = np.where(is_spread, 1 - FAMILY_ALPHA, 1 - FAMILY_ALPHA / k)
+    pts["min_drop"] = np.where(is_spread, MIN_DROP_RATIO, MIN_DROP_FRACTION * pts["limit"])
+    cyl_count = fams["cylinders"].reindex(fr.units["family_id"]).set_axis(fr.units.index)
+    pts["event_seg"] = _event_segments(pts, fr.events, cyl_count)
+    pts["cylinder"] = pts["cylinder"].astype(int)
+    pts["series"] = (pts["unit_id"].astype(np.int64) * SERIES_STRIDE
+                     + pts["cylinder"] * 1000 + pts["event_seg"])
+    # The pooling group of a spread series is its own (negative) group per family.
+    pts["group"] = np.where(pts["cylinder"] == SPREAD_CYLINDER, -1 - pts["family_id"],
+                            pts["family_id"])
+    # Which event segment is current for each unit and cylinder as of now.
+    now = pts[["unit_id", "cylinder"]].drop_duplicates().assign(tested_at=as_of)
+    now["current_seg"] = _event_segments(now, fr.events, cyl_count)
+    pts = pts.merge(now[["unit_id", "cylinder", "current_seg"]], on=["unit_id", "cylinder"],
+                    how="left")
+    pts["current"] = pts["event_seg"] == pts["current_seg"]
+    return pts
+
+
+def assess(fr: Frames, as_of: pd.Timestamp, *, horizon_weeks: int = HORIZON_WEEKS,
+           family_params: pd.DataFrame | None = None) -> Assessment:
+    """Judge every unit in ``fr`` as of ``as_of``.
+
+    :param fr: analysis frames (already cut at ``as_of`` by :func:`fleetdb.frames.load`).
+    :param as_of: the moment of the assessment.
+    :param horizon_weeks: planning horizon for ``plan``.
+    :param family_params: stored family wear statistics (a one-unit refresh pools with
+        them instead of recomputing the family); None: pool over the units given.
+    """
+    res = checks.check_tests(fr.families, fr.tests, fr.readings)
+    pts = _series_points(fr, res, as_of)
+    fit_in = pts[pts["in_fit"]]
+    fits, steps = fleetfit.fit_fleet(fit_in, series="series", group="group", x="hours",
+                                  y="value_sl", limit="limit", step_confidence="step_level",
+                                  min_drop="min_drop", family_params=family_params,
+                                  return_points=True)
+    pts["step"] = False
+    pts["expected"] = np.nan
+    pts["lower_bound"] = np.nan
+    pts.loc[fit_in.index, "step"] = steps["step"].to_numpy()
+    pts.loc[fit_in.index, "expected"] = steps["expected"].to_numpy()
+    pts.loc[fit_in.index, "lower_bound"] = steps["lower_bound"].to_numpy()
+    keys = fits.index.to_numpy(dtype=np.int64)
+    fits = fits.assign(unit_id=keys // SERIES_STRIDE, cylinder=(keys % SERIES_STRIDE) // 1000,
+                       event_seg=keys % 1000)
+    current = pts.loc[pts["current"], "series"].unique()
+    fits["current"] = fits.index.isin(current)
+    params = fleetfit.family_params(fits) if family_params is None else family_params
+    units = _unit_table(fr, as_of, fits)
+    reasons = _reasons(fr, res, pts, fits, units, as_of, horizon_weeks)
+    units = _levels(units, reasons)
+    return Assessment(as_of=as_of, units=units, reasons=reasons, checks=res, points=pts,
+                      fits=fits, family_params=params)
+
+
+def _not_before(cross: pd.Series, last_x: pd.Series) -> np.ndarray:
+    """Crossing hours, moved up to the last test where the trend is already past the limit."""
+    c = cross.to_numpy(float)
+    return np.where(np.isnan(c), np.nan, np.maximum(c, last_x.to_numpy(float)))
+
+
+def _unit_table(fr: Frames, as_of: pd.Timestamp, fits: pd.DataFrame) -> pd.DataFrame:
+    """Per unit: last test, utilisation and the earliest projected crossing (hours, date)."""
+    units = fr.units[["fleet_no", "site", "family", "family_id"]].copy()
+    valid = fr.tests[~fr.tests["voided"]].sort_values("tested_at")
+    last = valid.groupby("unit_id").tail(1)
+    units["last_test_id"] = pd.Series(last.index, index=last["unit_id"]).reindex(units.index)
+    units["last_tested_at"] = last.set_index("unit_id")["tested_at"].reindex(units.index)
+    units["last_hours"] = last.set_index("unit_id")["hours"].reindex(units.index)
+    units["hours_per_week"] = _hours_per_week(fr, as_of)
+    weeks_since = (as_of - units["last_tested_at"]).dt.total_seconds() / (7 * 86400)
+    units["hours_now"] = units["last_hours"] + units["hours_per_week"].fillna(0) * weeks_since
+    cur = fits[fits["current"]].copy()
+    for col, out in (("cross_point", "projected_hours"), ("cross_planning",
+                                                          "projected_hours_early")):
+        # A crossing before the last test means the trend is already at the limit then.
+        cur[col] = _not_before(cur[col], cur["last_x"])
+        units[out] = cur.groupby("unit_id")[col].min().reindex(units.index)
+
+    def to_date(hours: pd.Series) -> pd.Series:
+        weeks = (hours - units["hours_now"]) / units["hours_per_week"]
+        return (as_of + pd.to_timedelta(weeks * 7, unit="D")).dt.normalize()
+
+    units["projected_date"] = to_date(units["projected_hours"])
+    units["projected_date_early"] = to_date(units["projected_hours_early"])
+    wear = fits[fits["current"] & (fits["cylinder"] != SPREAD_CYLINDER)]
+    units["wear_kpa_per_1000h"] = wear.groupby("unit_id")["slope"].min().reindex(
+        units.index) * 1000
+    units["interval_days"] = fr.families["test_interval_days"].reindex(
+        units["family_id"]).to_numpy()
+    return units
+
+
+def _reason_rows(unit_ids: Any, code: str, level: str, texts: Any, numbers: Any,
+                 test_ids: Any) -> pd.DataFrame:
+    unit_ids = np.atleast_1d(np.asarray(unit_ids))
+    n = len(unit_ids)
+
+    def many(v: Any) -> list:
+        return list(v) if isinstance(v, (list, np.ndarray, pd.Series)) else [v] * n
+    return pd.DataFrame({"unit_id": unit_ids, "code": code, "level": level,
+                         "text": many(texts), "numbers": many(numbers),
+                         "test_id": many(test_ids)})
+
+
+def _fmt_date(value: Any) -> str:
+    return "unknown" if pd.isna(value) else pd.Timestamp(value).date().isoformat()
+
+
+def _reasons(fr: Frames, res: checks.CheckResult, pts: pd.DataFrame, fits: pd.DataFrame,
+             units: pd.DataFrame, as_of: pd.Timestamp, horizon_weeks: int) -> pd.DataFrame:
+    tests, summ, findings = fr.tests, res.tests, res.findings
+    parts: list[pd.DataFrame] = []
+    ev = fr.events[fr.events["kind"].isin(RESET_KINDS)]
+    last_reset = ev.groupby("unit_id")["date"].max().reindex(tests["unit_id"]).to_numpy()
+    judgeable = (summ["trustworthy"].reindex(tests.index).fillna(False).to_numpy(bool)
+                 & ~tests["voided"].to_numpy(bool)
+                 & summ["dry_min_kpa"].reindex(tests.index).notna().to_numpy()
+                 & ~(tests["tested_at"].to_numpy() < last_reset))
+    judged = tests[judgeable].sort_values("tested_at").groupby("unit_id").tail(1)
+    judged_id = pd.Series(judged.index, index=judged["unit_id"])
+
+    # 1. Limits and patterns of the judged test.
+    f = findings[findings["test_id"].isin(judged_id.to_numpy())]
+    f_unit = tests["unit_id"].reindex(f["test_id"]).to_numpy()
+    for mask, level in ((f["severity"] == "limit", "act"),
+                        (f["code"].isin(WATCH_PATTERNS) & (f["severity"] != "limit"), "watch")):
+        sel = f[mask.to_numpy()]
+        for code, grp in sel.groupby("code", sort=False):
+            parts.append(_reason_rows(f_unit[mask.to_numpy()][sel["code"].to_numpy() == code],
+                                      code, level, grp["message"].to_numpy(),
+                                      grp["numbers"].to_numpy(), grp["test_id"].to_numpy()))
+
+    # 2. The latest test is not trustworthy: a retest, with the reasons why.
+    last_id = units["last_test_id"].dropna().astype(int)
+    untrusted = last_id[~summ["trustworthy"].reindex(last_id.to_numpy()).fillna(True)
+                        .to_numpy(bool)]
+    art = findings[findings["test_id"].isin(untrusted.to_numpy())
+                   & (findings["severity"].eq("artefact")
+                      | findings["code"].isin(ARTEFACT_CODES))]
+    art_unit = tests["unit_id"].reindex(art["test_id"]).to_numpy()
+    for code in art["code"].unique():
+        m = (art["code"] == code).to_numpy()
+        parts.append(_reason_rows(art_unit[m], code, "retest", art["message"].to_numpy()[m],
+                                  art["numbers"].to_numpy()[m], art["test_id"].to_numpy()[m]))
+    silent = untrusted[~untrusted.isin(art["test_id"])]
+    if len(silent):
+        parts.append(_reason_rows(silent.index.to_numpy(), "retest_untrustworthy", "retest",
+                                  "The latest test is not trustworthy; retest.", {},
+                                  silent.to_numpy()))
+
+    # 3. Overdue or never tested.
+    age = (as_of - units["last_tested_at"]).dt.days
+    overdue = units[age > units["interval_days"]]
+    if len(overdue):
+        parts.append(_reason_rows(
+            overdue.index.to_numpy(), "test_overdue", "retest",
+            [f"Last tested {_fmt_date(t)}, {d} days ago; the family's interval is {i} days."
+             for t, d, i in zip(overdue["last_tested_at"], age[overdue.index],
+                                overdue["interval_days"], strict=True)],
+            [{"days_since_test": int(d), "interval_days": int(i)}
+             for d, i in zip(age[overdue.index], overdue["interval_days"], strict=True)],
+            overdue["last_test_id"].to_numpy()))
+    never = units[units["last_tested_at"].isna()]
+    if len(never):
+        parts.append(_reason_rows(never.index.to_numpy(), "no_test", "retest",
+                                  "No test recorded for this unit yet.", {}, None))
+
+    # 4. Sudden drops on the judged test.
+    drops = pts[pts["step"] & pts["current"].astype(bool) & pts["test_id"].isin(judged_id)
+                & (pts["cylinder"] != SPREAD_CYLINDER)]
+    if len(drops):
+        texts = [
+            f"Cylinder {c} fell to {_psi(v)}, {_psi(e - v)} below its own trend (lower "
+            f"bound {_psi(lb)}): a sudden drop, not gradual wear; confirm with a retest, "
+            "leak-down or wet test before re-planning."
+            for c, v, e, lb in zip(drops["cylinder"], drops["value_sl"], drops["expected"],
+                                   drops["lower_bound"], strict=True)]
+        numbers = [{"cylinder": int(c), "value_sl": v, "expected": e, "lower_bound": lb}
+                   for c, v, e, lb in zip(drops["cylinder"], drops["value_sl"],
+                                          drops["expected"], drops["lower_bound"], strict=True)]
+        parts.append(_reason_rows(drops["unit_id"].to_numpy(), "sudden_drop", "watch", texts,
+                                  numbers, drops["test_id"].to_numpy()))
+
+    # 5. Projected crossing within the horizon.
+    horizon = as_of + pd.Timedelta(weeks=horizon_weeks)
+    soon = units[units["projected_date_early"].notna() & (units["projected_date_early"]
+                                                          <= horizon)]
+    if len(soon):
+        cur = fits[fits["current"]]
+        cur = cur.assign(cross_planning=_not_before(cur["cross_planning"], cur["last_x"]))
+        first = (cur[cur["cross_planning"].notna()].sort_values("cross_planning")
+                 .groupby("unit_id").head(1).set_index("unit_id").reindex(soon.index))
+        texts, numbers = [], []
+        for uid, row in soon.iterrows():
+            what = ("the lowest/highest ratio" if first.at[uid, "cylinder"] == SPREAD_CYLINDER
+                    else f"cylinder {int(first.at[uid, 'cylinder'])}")
+            if row["projected_hours_early"] <= row["last_hours"]:
+                texts.append(f"The wear trend of {what} is already at its limit by the last "
+                             f"test ({row['last_hours']:.0f} h). A planning aid, not a "
+                             "certification.")
+            else:
+                texts.append(
+                    f"The wear trend of {what} reaches its limit at about "
+                    f"{row['projected_hours_early']:.0f} h (conservative, 95 %), around "
+                    f"{_fmt_date(row['projected_date_early'])}; best estimate "
+                    f"{_fmt_date(row['projected_date'])}. A planning aid, not a "
+                    "certification.")
+            numbers.append({"cylinder": int(first.at[uid, "cylinder"]),
+                            "projected_hours": row["projected_hours"],
+                            "projected_hours_early": row["projected_hours_early"],
+                            "slope_kpa_per_h": first.at[uid, "slope"],
+                            "slope_source": first.at[uid, "slope_source"],
+                            "hours_per_week": row["hours_per_week"]})
+        parts.append(_reason_rows(soon.index.to_numpy(), "projected_limit", "plan", texts,
+                                  numbers, soon["last_test_id"].to_numpy()))
+
+    # 6. Wearing faster than the family.
+    cyl_fits = fits[fits["current"] & (fits["cylinder"] != SPREAD_CYLINDER)]
+    k = cyl_fits.groupby("unit_id")["cylinder"].transform("size").to_numpy(float)
+    fast = cyl_fits[cyl_fits["family_z"].to_numpy(float)
+                    < -stats.norm.ppf(1 - FAMILY_ALPHA / k)]
+    if len(fast):
+        g = fast.groupby("unit_id").agg(cyls=("cylinder", list), slope=("slope", "min"),
+                                        mu=("family_mu", "first"))
+        parts.append(_reason_rows(
+            g.index.to_numpy(), "wear_faster_than_family", "watch",
+            [f"Cylinder(s) {', '.join(map(str, c))} lose {-s * 1000:.1f} kPa per 1000 h, "
+             f"significantly faster than the family's {-m * 1000:.1f} kPa per 1000 h."
+             for c, s, m in zip(g["cyls"], g["slope"], g["mu"], strict=True)],
+            [{"cylinders": c, "slope_kpa_per_h": s, "family_slope_kpa_per_h": m}
+             for c, s, m in zip(g["cyls"], g["slope"], g["mu"], strict=True)],
+            units["last_test_id"].reindex(g.index).to_numpy()))
+
+    # 7. Close to the minimum on the judged test.
+    jmin = summ["dry_min_kpa"].reindex(judged_id.to_numpy()).to_numpy()
+    fmin = fr.families["min_compression_kpa"].reindex(
+        units["family_id"].reindex(judged_id.index)).to_numpy()
+    near = (jmin >= fmin) & (jmin < fmin * NEAR_MINIMUM_FRACTION)
+    if near.any():
+        parts.append(_reason_rows(
+            judged_id.index.to_numpy()[near], "near_minimum", "watch",
+            [f"The lowest cylinder reads {_psi(v)} (sea-level equivalent), within 10 % of the "
+             f"minimum {_psi(m)}." for v, m in zip(jmin[near], fmin[near], strict=True)],
+            [{"lowest_kpa": v, "minimum_kpa": m} for v, m in zip(jmin[near], fmin[near],
+                                                                 strict=True)],
+            judged_id.to_numpy()[near]))
+
+    if not parts:
+        return pd.DataFrame(columns=["unit_id", "code", "level", "text", "numbers", "test_id"])
+    out = pd.concat(parts, ignore_index=True)
+    out["numbers"] = [_jsonable(n) for n in out["numbers"]]
+    out["rank"] = out["level"].map(LEVEL_RANK)
+    return out.sort_values(["unit_id", "rank"], kind="stable").drop(columns="rank")
+
+
+def _levels(units: pd.DataFrame, reasons: pd.DataFrame) -> pd.DataFrame:
+    """Each unit's level: the worst of its reasons (``sound`` when it has none)."""
+    units = units.copy()
+    if reasons.empty:
+        units["level"], units["main_code"], units["main_text"] = "sound", None, None
+        return units
+    first = reasons.groupby("unit_id").head(1).set_index("unit_id")
+    units["level"] = first["level"].reindex(units.index).fillna("sound")
+    units["main_code"] = first["code"].reindex(units.index)
+    units["main_text"] = first["text"].reindex(units.index)
+    return units

@@ -1,0 +1,439 @@
+"""Unit health, stored weekly: refresh the fleet or a few units, serve the board from it.
+
+The analysis itself is :func:`fleetdb.assess.assess`; this module feeds it from the store
+and keeps its results: one ``health_snapshot`` row per unit and week (the board reads
+only these, never recomputing per request) and one ``family_wear`` row per family and
+week (so that refreshing one unit after a logged test pools with its family's stored
+statistics instead of re-reading the whole family).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from sqlalchemy import text
+from sqlalchemy.engine import Connection, Engine
+
+from fleetdb import assess as assess_mod
+from fleetdb import fleetfit, frames
+from fleetdb.assess import LEVEL_RANK, LEVELS, Assessment
+from fleetdb.ingest import stamp
+from fleetdb.views import unit_id_for
+
+__all__ = ["LEVELS", "board", "refresh_fleet", "refresh_units", "test_verdict", "unit_report",
+           "week_start"]
+
+
+def week_start(day: dt.date) -> dt.date:
+    """The Monday of ``day``'s ISO week."""
+    return day - dt.timedelta(days=day.weekday())
+
+
+def _as_of(day: dt.date | None) -> tuple[dt.date, pd.Timestamp]:
+    day = day or dt.date.today()
+    return day, pd.Timestamp(day) + pd.Timedelta(hours=23, minutes=59, seconds=59)
+
+
+def _date(value: Any) -> dt.date | None:
+    return None if value is None or pd.isna(value) else pd.Timestamp(value).date()
+
+
+def _float(value: Any) -> float | None:
+    return None if value is None or pd.isna(value) else float(value)
+
+
+def _stored_family_params(conn: Connection, week: dt.date) -> pd.DataFrame | None:
+    """The latest stored family statistics at or before ``week``, keyed like assess groups."""
+    rows = conn.execute(text(
+        "SELECT w.family_id, w.mean_slope, w.tau2, w.pooled_sd, w.n_series, w.mean_slope_se, "
+        "w.pooled_df, w.spread_mean_slope, w.spread_tau2, w.spread_pooled_sd, "
+        "w.spread_mean_slope_se, w.spread_pooled_df FROM family_wear w WHERE w.week_start = "
+        "(SELECT MAX(week_start) FROM family_wear WHERE week_start <= :w)"),
+        {"w": week}).all()
+    if not rows:
+        return None
+    out = []
+    for r in rows:
+        out.append((r[0], r[1], r[5], r[2], r[3], r[6], r[4]))
+        out.append((-1 - r[0], r[7], r[10], r[8], r[9], r[11], r[4]))
+    frame = pd.DataFrame(out, columns=["group", "family_mu", "family_mu_se", "family_tau2",
+                                       "family_noise_sd", "family_noise_df", "n_series"])
+    frame = frame.set_index("group")[fleetfit.FAMILY_PARAM_COLUMNS]
+    return frame.astype(float)
+
+
+def _store(conn: Connection, result: Assessment, week: dt.date, day: dt.date,
+           full: bool) -> None:
+    """Write the snapshot rows (replacing this week's rows of these units)."""
+    units = result.units
+    ids = [int(u) for u in units.index]
+    at = stamp(conn)
+    for start in range(0, len(ids), 1000):
+        chunk = ",".join(str(u) for u in ids[start:start + 1000])
+        conn.execute(text(f"DELETE FROM health_snapshot WHERE week_start = :w AND unit_id IN "
+                          f"({chunk})"), {"w": week})
+    reasons = {uid: grp[["code", "level", "text", "numbers", "test_id"]].to_dict("records")
+               for uid, grp in result.reasons.groupby("unit_id")}
+    rows = []
+    for uid, u in units.iterrows():
+        rs = [{**r, "test_id": None if pd.isna(r["test_id"]) else int(r["test_id"])}
+              for r in reasons.get(uid, [])]
+        rows.append({
+            "unit_id": int(uid), "week_start": week, "as_of": day, "level": u["level"],
+            "main_code": u["main_code"] if isinstance(u["main_code"], str) else None,
+            "main_text": (u["main_text"][:500] if isinstance(u["main_text"], str) else None),
+            "reasons_json": json.dumps(rs, ensure_ascii=False),
+            "last_test_id": None if pd.isna(u["last_test_id"]) else int(u["last_test_id"]),
+            "last_tested_at": None if pd.isna(u["last_tested_at"])
+            else pd.Timestamp(u["last_tested_at"]).to_pydatetime(),
+            "last_hours": _float(u["last_hours"]),
+            "projected_hours": _float(u["projected_hours"]),
+            "projected_hours_early": _float(u["projected_hours_early"]),
+            "projected_date": _date(u["projected_date"]),
+            "projected_date_early": _date(u["projected_date_early"]),
+            "wear": _float(u["wear_kpa_per_1000h"]), "at": at})
+    if rows:
+        conn.execute(text(
+            "INSERT INTO health_snapshot (unit_id, week_start, as_of, level, main_code, "
+            "main_text, reasons_json, last_test_id, last_tested_at, last_hours, "
+            "projected_hours, projected_hours_early, projected_date, projected_date_early, "
+            "wear_kpa_per_1000h, computed_at) VALUES (:unit_id, :week_start, :as_of, :level, "
+            ":main_code, :main_text, :reasons_json, :last_test_id, :last_tested_at, "
+            ":last_hours, :projected_hours, :projected_hours_early, :projected_date, "
+            ":projected_date_early, :wear, :at)"), rows)
+    if full:
+        _store_family_params(conn, result.family_params, week, at)
+
+
+def _store_family_params(conn: Connection, params: pd.DataFrame, week: dt.date,
+                         at: Any) -> None:
+    conn.execute(text("DELETE FROM family_wear WHERE week_start = :w"), {"w": week})
+    fams = sorted({int(g) if g >= 0 else int(-1 - g) for g in params.index})
+    rows = []
+    for fid in fams:
+        wear = params.loc[fid] if fid in params.index else None
+        spread = params.loc[-1 - fid] if (-1 - fid) in params.index else None
+
+        def val(row: pd.Series | None, col: str) -> float | None:
+            return None if row is None else _float(row[col])
+        rows.append({
+            "f": fid, "w": week, "mu": val(wear, "family_mu"), "tau2": val(wear, "family_tau2"),
+            "sd": val(wear, "family_noise_sd"), "n": int(val(wear, "n_series") or 0),
+            "mu_se": val(wear, "family_mu_se"), "df": val(wear, "family_noise_df"),
+            "smu": val(spread, "family_mu"), "stau2": val(spread, "family_tau2"),
+            "ssd": val(spread, "family_noise_sd"), "smu_se": val(spread, "family_mu_se"),
+            "sdf": val(spread, "family_noise_df"), "at": at})
+    if rows:
+        conn.execute(text(
+            "INSERT INTO family_wear (family_id, week_start, mean_slope, tau2, pooled_sd, "
+            "n_series, mean_slope_se, pooled_df, spread_mean_slope, spread_tau2, "
+            "spread_pooled_sd, spread_mean_slope_se, spread_pooled_df, computed_at) VALUES "
+            "(:f, :w, :mu, :tau2, :sd, :n, :mu_se, :df, :smu, :stau2, :ssd, :smu_se, :sdf, "
+            ":at)"), rows)
+
+
+def refresh_fleet(engine: Engine, as_of: dt.date | None = None) -> dict[str, Any]:
+    """Recompute every unit as of a day and store that week's snapshot.
+
+    :param engine: the store.
+    :param as_of: the day (default today); tests, events and voids after it are ignored.
+    :returns: counts per level and the week.
+    """
+    day, moment = _as_of(as_of)
+    result = assess_mod.assess(frames.load(engine, as_of=moment), moment)
+    week = week_start(day)
+    with engine.begin() as conn:
+        _store(conn, result, week, day, full=True)
+    counts = result.units["level"].value_counts()
+    return {"week_start": week.isoformat(), "units": len(result.units),
+            "counts": {lvl: int(counts.get(lvl, 0)) for lvl in LEVELS}}
+
+
+def assess_units(engine: Engine, unit_ids: list[int], as_of: dt.date | None = None) -> Assessment:
+    """Assess some units, pooling with their families' stored statistics when there are any."""
+    day, moment = _as_of(as_of)
+    with engine.connect() as conn:
+        params = _stored_family_params(conn, week_start(day))
+    return assess_mod.assess(frames.load(engine, unit_ids, as_of=moment), moment,
+                             family_params=params)
+
+
+def refresh_units(engine: Engine, unit_ids: list[int], as_of: dt.date | None = None) -> None:
+    """Recompute a few units (after a logged test or an import) and update this week's rows.
+
+    A week with no snapshot yet gets a full refresh instead, so the board is never partial.
+    """
+    day, _ = _as_of(as_of)
+    week = week_start(day)
+    with engine.connect() as conn:
+        have = conn.execute(text("SELECT COUNT(*) FROM health_snapshot WHERE week_start = :w"),
+                            {"w": week}).scalar_one()
+    if not have or len(unit_ids) > 2000:
+        refresh_fleet(engine, day)
+        return
+    result = assess_units(engine, unit_ids, day)
+    with engine.begin() as conn:
+        _store(conn, result, week, day, full=False)
+
+
+_LEVEL_ORDER = "CASE s.level " + " ".join(
+    f"WHEN '{lvl}' THEN {i}" for i, lvl in enumerate(LEVELS)) + " END"
+
+
+def _ensure_week(engine: Engine, day: dt.date) -> dt.date:
+    week = week_start(day)
+    with engine.connect() as conn:
+        have = conn.execute(text("SELECT COUNT(*) FROM health_snapshot WHERE week_start = :w"),
+                            {"w": week}).scalar_one()
+        units = conn.execute(text("SELECT COUNT(*) FROM unit")).scalar_one()
+    if have < units:
+        refresh_fleet(engine, day)
+    return week
+
+
+def board(engine: Engine, as_of: dt.date | None = None, *, site: str | None = None,
+          family: str | None = None, level: str | None = None, search: str | None = None,
+          offset: int = 0, limit: int | None = None) -> dict[str, Any]:
+    """The weekly health board from the stored snapshot, worst first, filtered and paged.
+
+    :param as_of: the day whose week is shown (default today).
+    :param site: only this site.
+    :param family: only this engine family.
+    :param level: only this level.
+    :param search: fleet numbers containing this text (case-insensitive).
+    :param offset: rows to skip (paging).
+    :param limit: rows to return (None: all).
+    """
+    day, _ = _as_of(as_of)
+    week = _ensure_week(engine, day)
+    previous = week - dt.timedelta(days=7)
+    where = ["s.week_start = :w"]
+    params: dict[str, Any] = {"w": week, "p": previous}
+    if site:
+        where.append("st.name = :site")
+        params["site"] = site
+    if family:
+        where.append("f.name = :family")
+        params["family"] = family
+    if search:
+        where.append("LOWER(u.fleet_no) LIKE :search")
+        params["search"] = f"%{search.strip().lower()}%"
+    base = ("FROM health_snapshot s JOIN unit u ON u.id = s.unit_id "
+            "JOIN site st ON st.id = u.site_id JOIN engine_family f ON f.id = u.family_id "
+            "LEFT JOIN health_snapshot p ON p.unit_id = s.unit_id AND p.week_start = :p ")
+    level_where = where + (["s.level = :level"] if level else [])
+    if level:
+        params["level"] = level
+    page = f" LIMIT {int(limit)} OFFSET {int(offset)}" if limit is not None else ""
+    with engine.connect() as conn:
+        rows = conn.execute(text(
+            "SELECT s.unit_id, u.fleet_no, st.name, f.name, s.level, s.main_code, s.main_text, "
+            "s.reasons_json, s.projected_date, s.projected_date_early, s.projected_hours, "
+            "s.projected_hours_early, s.last_tested_at, s.last_hours, p.level "
+            + base + "WHERE " + " AND ".join(level_where)
+            + f" ORDER BY {_LEVEL_ORDER}, (s.projected_date_early IS NULL), "
+            "s.projected_date_early, u.fleet_no" + page), params).all()
+        total = conn.execute(text("SELECT COUNT(*) " + base + "WHERE "
+                                  + " AND ".join(level_where)), params).scalar_one()
+        counts = dict(conn.execute(text("SELECT s.level, COUNT(*) " + base + "WHERE "
+                                        + " AND ".join(where) + " GROUP BY s.level"),
+                                   params).all())
+        by_site = conn.execute(text(
+            "SELECT st.name, s.level, COUNT(*) FROM health_snapshot s JOIN unit u ON "
+            "u.id = s.unit_id JOIN site st ON st.id = u.site_id WHERE s.week_start = :w "
+            "GROUP BY st.name, s.level ORDER BY st.name"), {"w": week}).all()
+        had_previous = conn.execute(text(
+            "SELECT COUNT(*) FROM health_snapshot WHERE week_start = :p"),
+            {"p": previous}).scalar_one() > 0
+    counts_by_site: dict[str, dict[str, int]] = {}
+    for name, lvl, n in by_site:
+        counts_by_site.setdefault(name, {x: 0 for x in LEVELS})[lvl] = int(n)
+    return {
+        "week_start": week.isoformat(), "as_of": day.isoformat(),
+        "previous_week_start": previous.isoformat() if had_previous else None,
+        "total": int(total), "counts": {lvl: int(counts.get(lvl, 0)) for lvl in LEVELS},
+        "counts_by_site": counts_by_site,
+        "rows": [_board_row(r, day, had_previous) for r in rows],
+    }
+
+
+def _change(level: str, previous: str | None, had_previous: bool) -> str | None:
+    if not had_previous:
+        return None
+    if previous is None:
+        return "new"
+    diff = LEVEL_RANK[level] - LEVEL_RANK[previous]
+    return "same" if diff == 0 else ("worse" if diff < 0 else "better")
+
+
+def _iso(value: Any) -> str | None:
+    if value is None:
+        return None
+    return (value if isinstance(value, str) else value.isoformat())[:16].replace("T", " ")
+
+
+def _board_row(r: Any, day: dt.date, had_previous: bool) -> dict[str, Any]:
+    reasons = json.loads(r[7]) if r[7] else []
+    hours_to_limit = None
+    if r[11] is not None and r[13] is not None:
+        hours_to_limit = round(float(r[11]) - float(r[13]), 0)
+    return {
+        "unit_id": int(r[0]), "fleet_no": r[1], "site": r[2], "engine_family": r[3],
+        "level": r[4], "main_code": r[5], "main_text": r[6],
+        "reasons": list(dict.fromkeys(x["code"] for x in reasons)),
+        "projected_date": _iso(r[8]), "projected_date_early": _iso(r[9]),
+        "projected_hours": _float(r[10]), "projected_hours_early": _float(r[11]),
+        "hours_to_limit": hours_to_limit, "last_tested_at": _iso(r[12]),
+        "last_hours": _float(r[13]), "previous_level": r[14],
+        "change": _change(r[4], r[14], had_previous),
+    }
+
+
+def _clean(value: Any) -> Any:
+    """JSON-ready: numpy scalars to Python, NaN/NaT to None, timestamps to text."""
+    if isinstance(value, dict):
+        return {k: _clean(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_clean(v) for v in value]
+    if isinstance(value, (pd.Timestamp, dt.datetime)):
+        return None if pd.isna(value) else _iso(value)
+    if isinstance(value, dt.date):
+        return value.isoformat()
+    if isinstance(value, np.bool_):
+        return bool(value)
+    if isinstance(value, np.integer):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        return None if not np.isfinite(value) else float(value)
+    if value is pd.NA or value is pd.NaT:
+        return None
+    return value
+
+
+def unit_report(engine: Engine, fleet_no: str, as_of: dt.date | None = None) -> dict[str, Any]:
+    """Everything about one unit's health: level, reasons, tests, readings, fits (kPa).
+
+    The shape is documented in DEVELOPERS.md ("The health API") and in the README.
+    """
+    uid = unit_id_for(engine, fleet_no)
+    result = assess_units(engine, [uid], as_of)
+    fr = frames.load(engine, [uid], as_of=result.as_of)
+    u = result.units.loc[uid]
+    fam = fr.families.loc[u["family_id"]]
+    unit_row = fr.units.loc[uid]
+    findings = result.checks.findings
+    tests = []
+    for test_id, t in fr.tests.iterrows():
+        summ = result.checks.tests.loc[test_id]
+        f = findings[findings["test_id"] == test_id]
+        tests.append(_clean({
+            "test_id": test_id, "tested_at": t["tested_at"], "hours": t["hours"],
+            "trustworthy": bool(summ["trustworthy"]), "voided": bool(t["voided"]),
+            "void_reason": t["void_reason"] if isinstance(t["void_reason"], str) else None,
+            "battery_v": t["battery_v"], "crank_rpm": t["crank_rpm"],
+            "engine_temp_c": t["engine_temp_c"], "baro_kpa": t["baro_kpa"],
+            "baro_measured": bool(t["baro_measured"]),
+            "throttle_open": None if pd.isna(t["throttle_open"]) else bool(t["throttle_open"]),
+            "technician": t["technician"] if isinstance(t["technician"], str) else None,
+            "source": t["source"], "lowest_kpa": summ["dry_min_kpa"],
+            "highest_kpa": summ["dry_max_kpa"], "ratio": summ["dry_ratio"],
+            "findings": [{"code": c, "severity": s, "text": m}
+                         for c, s, m in zip(f["code"], f["severity"], f["message"],
+                                            strict=True)]}))
+    pts = result.points
+    readings = fr.readings.merge(fr.tests[["tested_at", "hours", "baro_kpa"]],
+                                 left_on="test_id", right_index=True)
+    dry_flags = pts[pts["cylinder"] != assess_mod.SPREAD_CYLINDER].set_index(
+        ["test_id", "cylinder"])[["in_fit", "step"]]
+    out_readings = []
+    for r in readings.itertuples(index=False):
+        sl = r.value * (101.325 / r.baro_kpa) if r.kind in ("compression", "wet") else (
+            r.value + (101.325 - r.baro_kpa) if r.kind.startswith("vacuum") else r.value)
+        key = (r.test_id, int(r.cylinder)) if not pd.isna(r.cylinder) else None
+        flags = dry_flags.loc[key] if (r.kind == "compression" and key in dry_flags.index) \
+            else None
+        out_readings.append(_clean({
+            "test_id": r.test_id, "tested_at": r.tested_at, "hours": r.hours, "kind": r.kind,
+            "cylinder": None if pd.isna(r.cylinder) else int(r.cylinder), "value_kpa": r.value,
+            "value_sl_kpa": sl, "in_fit": bool(flags["in_fit"]) if flags is not None else False,
+            "step": bool(flags["step"]) if flags is not None else False}))
+    fits = []
+    for key, f in result.fits.iterrows():
+        seg_pts = pts[(pts["series"] == key) & pts["in_fit"]]
+        intercept_used = (f["ts_intercept"] if f["slope_source"] == "theil_sen_outlier"
+                          else f["ols_intercept"])
+        if f["slope_source"] in ("pooled_short", "ols_faster_than_family"):
+            intercept_used = (seg_pts["value_sl"].mean() - f["slope"] * seg_pts["hours"].mean()
+                              if f["slope_source"] == "pooled_short" else f["ols_intercept"])
+        start = f["last_step_x"] if np.isfinite(f["last_step_x"]) else seg_pts["hours"].min()
+        fits.append(_clean({
+            "cylinder": "spread" if f["cylinder"] == assess_mod.SPREAD_CYLINDER
+            else int(f["cylinder"]), "segment": int(f["event_seg"]), "current": bool(f["current"]),
+            "start_hours": start, "end_hours": f["last_x"], "n": int(f["n"]),
+            "limit": f["limit"], "slope_ols": f["ols_slope"], "intercept_ols": f["ols_intercept"],
+            "slope_theil_sen": f["ts_slope"], "slope_pooled": f["pooled_slope"],
+            "slope_used": f["slope"], "slope_se": f["slope_se"], "intercept_used": intercept_used,
+            "method": f["slope_source"], "faster_than_family": bool(f["faster_than_family"]),
+            "family_slope": f["family_mu"], "resid_sd": f["resid_sd"],
+            "projected_hours": f["cross_point"], "projected_hours_early": f["cross_planning"]}))
+    spread = result.checks.tests.join(fr.tests[["tested_at", "hours", "voided"]])
+    return _clean({
+        "unit": {"unit_id": uid, "fleet_no": fleet_no, "site": unit_row["site"],
+                 "site_elevation_m": unit_row["elevation_m"], "engine_family": unit_row["family"],
+                 "fuel": fam["fuel"], "cylinders": int(fam["cylinders"]), "banks": fam["banks"],
+                 "min_compression_kpa": fam["min_compression_kpa"], "min_ratio": fam["min_ratio"],
+                 "hours_per_week": u["hours_per_week"], "last_tested_at": u["last_tested_at"],
+                 "last_hours": u["last_hours"]},
+        "as_of": result.as_of.date(), "level": u["level"], "main_code": u["main_code"]
+        if isinstance(u["main_code"], str) else None,
+        "projected_hours": u["projected_hours"],
+        "projected_hours_early": u["projected_hours_early"],
+        "projected_date": u["projected_date"], "projected_date_early": u["projected_date_early"],
+        "reasons": result.reasons[result.reasons["unit_id"] == uid][
+            ["code", "level", "text", "numbers", "test_id"]].to_dict("records"),
+        "tests": tests, "readings": out_readings, "fits": fits,
+        "spread": [{"test_id": i, "tested_at": s["tested_at"], "hours": s["hours"],
+                    "ratio": s["dry_ratio"], "voided": bool(s["voided"]),
+                    "trustworthy": bool(s["trustworthy"])}
+                   for i, s in spread.iterrows() if not pd.isna(s["dry_ratio"])],
+        "events": [{"date": e["date"], "hours": e["hours"], "kind": e["kind"],
+                    "cylinders": list(e["cylinders"]),
+                    "note": e["note"] if isinstance(e["note"], str) else None}
+                   for _, e in fr.events.iterrows()],
+    })
+
+
+def test_verdict(engine: Engine, test_id: int) -> dict[str, Any]:
+    """The verdict on one test just logged: its checks and the unit's level before and after.
+
+    Refreshes the unit's health (this week's snapshot) on the way.
+    """
+    with engine.connect() as conn:
+        row = conn.execute(text("SELECT t.unit_id, u.fleet_no, t.tested_at FROM test t JOIN "
+                                "unit u ON u.id = t.unit_id WHERE t.id = :t"),
+                           {"t": test_id}).first()
+        if row is None:
+            from fleetdb.errors import FleetDBError
+            raise FleetDBError(f"no test with id {test_id}")
+        week = week_start(dt.date.today())
+        previous = conn.execute(text("SELECT level FROM health_snapshot WHERE unit_id = :u "
+                                     "AND week_start = :w"), {"u": row[0], "w": week}).scalar()
+    refresh_units(engine, [int(row[0])])
+    result = assess_units(engine, [int(row[0])])
+    summ = result.checks.tests.loc[test_id]
+    f = result.checks.findings
+    f = f[f["test_id"] == test_id]
+    return _clean({
+        "test_id": test_id, "fleet_no": row[1], "trustworthy": bool(summ["trustworthy"]),
+        "findings": [{"code": c, "severity": s, "text": m}
+                     for c, s, m in zip(f["code"], f["severity"], f["message"], strict=True)],
+        "lowest_kpa": summ["dry_min_kpa"], "highest_kpa": summ["dry_max_kpa"],
+        "ratio": summ["dry_ratio"], "level": result.units.loc[row[0], "level"],
+        "previous_level": previous,
+        "reasons": result.reasons[result.reasons["unit_id"] == row[0]][
+            ["code", "level", "text"]].to_dict("records"),
+    })
