@@ -68,6 +68,9 @@ HEALTH_CODES = {
     "retest_untrustworthy": "the latest test is not trustworthy: retest",
 }
 
+#: Reasons of one level are listed in this order: checks' codes, then health's.
+CODE_ORDER = {code: i for i, code in enumerate([*checks.CODES, *HEALTH_CODES])}
+
 
 @dataclass
 class Assessment:
@@ -422,7 +425,9 @@ def _reasons(fr: Frames, res: checks.CheckResult, pts: pd.DataFrame, fits: pd.Da
     out = pd.concat(parts, ignore_index=True)
     out["numbers"] = [_jsonable(n) for n in out["numbers"]]
     out["rank"] = out["level"].map(LEVEL_RANK)
-    return out.sort_values(["unit_id", "rank"], kind="stable").drop(columns="rank")
+    out["order"] = out["code"].map(CODE_ORDER).fillna(len(CODE_ORDER))
+    return (out.sort_values(["unit_id", "rank", "order"], kind="stable")
+            .drop(columns=["rank", "order"]).reset_index(drop=True))
 
 
 def _levels(units: pd.DataFrame, reasons: pd.DataFrame) -> pd.DataFrame:
