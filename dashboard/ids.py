@@ -1,0 +1,55 @@
+"""Every component id of the dashboard, page-prefixed, and the pattern-id builders.
+
+Pattern-matching ids match only when their key sets are identical, so they are built
+here and nowhere else, always with the keys ``type`` and ``index``.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+# -- the app shell ----------------------------------------------------------------------
+NAV = "app-nav"
+APP_URL = "app-url"
+
+# -- Log a test (/log) ----------------------------------------------------------------
+LOG_UNIT = "log-unit"
+LOG_UNIT_SUMMARY = "log-unit-summary"
+LOG_KIND = "log-kind"
+LOG_PRESSURE_UNIT = "log-pressure-unit"
+LOG_BLOCK = "log-block"
+LOG_BLOCK_CAPTION = "log-block-caption"
+LOG_TESTED_AT = "log-tested-at"
+LOG_HOURS = "log-hours"
+LOG_BATTERY_V = "log-battery-v"
+LOG_CRANK_RPM = "log-crank-rpm"
+LOG_ENGINE_TEMP_C = "log-engine-temp-c"
+LOG_BARO_KPA = "log-baro-kpa"
+LOG_THROTTLE = "log-throttle"
+LOG_VACUUM_CRANKING = "log-vacuum-cranking"
+LOG_VACUUM_IDLE = "log-vacuum-idle"
+LOG_VACUUM_UNIT = "log-vacuum-unit"
+LOG_TECHNICIAN = "log-technician"
+LOG_NOTE = "log-note"
+LOG_CHECK = "log-check"
+LOG_SAVE = "log-save"
+LOG_SAVE_RESULT = "log-save-result"
+LOG_VERDICT = "log-verdict"
+LOG_VERDICT_PANEL = "log-verdict-panel"
+LOG_VERDICT_GRAPH = "log-verdict-graph"
+LOG_SAFETY = "log-safety"
+
+_LOG_CYLINDER_TYPE = "log-cylinder"
+
+
+def log_cylinder(index: Any) -> dict[str, Any]:
+    """The id of one cylinder's reading input on the Log page.
+
+    :param index: the cylinder number, or a wildcard (``ALL``, ``MATCH``).
+    """
+    return {"type": _LOG_CYLINDER_TYPE, "index": index}
+
+
+def is_log_cylinder(component_id: Any) -> bool:
+    """Whether an id (as it comes back from the browser) is a cylinder input's."""
+    return isinstance(component_id, dict) and component_id.get("type") == _LOG_CYLINDER_TYPE
