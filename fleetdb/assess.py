@@ -37,17 +37,18 @@ import pandas as pd
 from scipy import stats
 
 from fleetdb import checks, fleetfit
+from fleetdb.defaults import DEFAULTS
 from fleetdb.frames import Frames
 from fleetdb.units import KPA_PER_UNIT
 
 LEVELS = ("act", "plan", "retest", "watch", "sound")
 LEVEL_RANK = {lvl: i for i, lvl in enumerate(LEVELS)}
 RESET_KINDS = ("overhaul", "head", "valves", "rings")
-NEAR_MINIMUM_FRACTION = 1.10  # (b) watch within 10 % above the minimum
-FAMILY_ALPHA = 0.05  # D11 / faster-than-family level for a whole test or unit (b/c)
-MIN_DROP_FRACTION = 0.10  # (b) a step falls at least 10 % of the minimum below the line
-MIN_DROP_RATIO = 0.05  # (b) the same for the lowest/highest ratio
-HORIZON_WEEKS = 13
+NEAR_MINIMUM_FRACTION = DEFAULTS["near_minimum_fraction"].value
+FAMILY_ALPHA = DEFAULTS["family_alpha"].value
+MIN_DROP_FRACTION = DEFAULTS["min_drop_fraction"].value
+MIN_DROP_RATIO = 0.05  # (b) the least sudden fall of the lowest/highest ratio
+HORIZON_WEEKS = int(DEFAULTS["planning_horizon_weeks"].value)
 ARTEFACT_CODES = ("weak_battery", "slow_cranking", "cold_engine", "intake_restriction",
                   "all_low_restriction", "all_low_artefact")
 WATCH_PATTERNS = ("single_low", "adjacent_pair_low", "non_adjacent_pair_low", "pair_low",
