@@ -471,6 +471,32 @@ def demo(as_of: Any, seed: int, db: str | None) -> None:
     ctx.invoke(board, as_of=as_of, as_json=False, db=db)
 
 
+@cli.command()
+@json_option
+def defaults(as_json: bool) -> None:
+    """List every default limit fleetdb ships, with its source.
+
+    An engine family's own service data overrides each of them; local rules apply.
+
+    \b
+    Example:
+        fleetdb defaults --json
+    """
+    from fleetdb.defaults import defaults_table
+
+    table = defaults_table().reset_index()
+    rows = table.to_dict("records")
+    if as_json:
+        print_json(rows)
+        return
+    for r in rows:
+        r["value"] = f"{r['value']:g} {r['unit']}"
+    print_table(rows, [("name", "name"), ("value", "value"), ("ref", "ref"),
+                       ("source", "source")])
+    click.echo("\nEvery limit is a default: the engine family's service data overrides it; "
+               "local regulations apply. fleetdb advises; it does not certify.")
+
+
 def main() -> None:
     """Console-script entry point."""
     cli(prog_name="fleetdb")
