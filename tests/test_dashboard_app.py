@@ -197,6 +197,36 @@ def test_save_writes_one_test_with_what_was_typed(store_url: str) -> None:
     assert again.test_id is None and "already has a test" in again.problems[0].message
 
 
+def test_two_saves_of_one_test_at_once_write_it_once(store_url: str) -> None:
+    # A double click, or a check running while the save commits: the same content twice at
+    # once. Whichever order the store sees them in, one test is written and the other is
+    # told it exists (the CLI's message), never a server error.
+    import threading
+
+    from sqlalchemy import text
+
+    entry = _entry(hours="900")
+    barrier = threading.Barrier(2)
+    results: list[data.SaveResult] = []
+
+    def save() -> None:
+        barrier.wait()
+        results.append(data.save_entry(store_url, entry))
+
+    threads = [threading.Thread(target=save) for _ in range(2)]
+    for thread in threads:
+        thread.start()
+    for thread in threads:
+        thread.join()
+    saved = [r for r in results if r.test_id is not None]
+    refused = [r for r in results if r.test_id is None]
+    assert len(saved) == 1 and len(refused) == 1
+    assert "already has a test" in refused[0].problems[0].message
+    with db.get_engine(store_url).connect() as conn:
+        assert conn.execute(text("SELECT COUNT(*) FROM test t JOIN unit u ON u.id = t.unit_id "
+                                 "WHERE u.fleet_no = 'T-102'")).scalar_one() == 1
+
+
 def test_verdict_reads_the_level_from_before_the_test(store_url: str) -> None:
     # design.md: "act" = a limit crossed on a valid test. 95 psi is under TEST-L4's 120 psi
     # minimum (tests/data/fleet.csv) on a test with sound conditions.
