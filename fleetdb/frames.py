@@ -28,9 +28,41 @@ class Frames:
 
 
 def _query(engine: Engine, sql: str, params: dict | None = None) -> pd.DataFrame:
+    """Run a query through the driver's own cursor (SQLAlchemy rows are slow to unpack)."""
     with engine.connect() as conn:
-        result = conn.execute(text(sql), params or {})
-        return pd.DataFrame(result.fetchall(), columns=list(result.keys()))
+        if params:
+            result = conn.execute(text(sql), params)
+            return pd.DataFrame(result.fetchall(), columns=list(result.keys()))
+        cursor = conn.connection.driver_connection.cursor()
+        cursor.execute(sql)
+        columns = [d[0] for d in cursor.description]
+        rows = cursor.fetchall()
+        cursor.close()
+        return pd.DataFrame(rows, columns=columns)
+
+
+def _sqlite_file(engine: Engine) -> str | None:
+    url = engine.url
+    if url.get_backend_name() == "sqlite" and url.database not in (None, "", ":memory:"):
+        return url.database
+    return None
+
+
+def _readings_query(engine: Engine, sql: str) -> pd.DataFrame:
+    """The big read: through Arrow (ADBC) for a SQLite file, else the driver cursor.
+
+    The query must return no NULLs: ADBC infers column types from the first rows.
+    """
+    path = _sqlite_file(engine)
+    if path is not None:
+        try:
+            import adbc_driver_sqlite.dbapi as adbc
+        except ImportError:  # pragma: no cover - adbc is a dependency; keep a plain path
+            return _query(engine, sql)
+        with adbc.connect(path) as conn, conn.cursor() as cursor:
+            cursor.execute(sql)
+            return cursor.fetch_arrow_table().to_pandas()
+    return _query(engine, sql)
 
 
 def _unit_filter(unit_ids: list[int] | None, column: str) -> str:
@@ -78,12 +110,14 @@ def load(engine: Engine, unit_ids: list[int] | None = None,
     for col in ("hours", "battery_v", "crank_rpm", "engine_temp_c"):
         tests[col] = tests[col].astype(float)
 
-    readings = _query(engine, "SELECT r.test_id, r.kind, r.cylinder, r.value_si AS value "
-                      "FROM reading r" + (" JOIN test t ON t.id = r.test_id"
-                                          + _unit_filter(unit_ids, "t.unit_id")
-                                          if unit_ids is not None else ""))
+    readings = _readings_query(
+        engine, "SELECT r.test_id, r.kind, COALESCE(r.cylinder, 0) AS cylinder, "
+        "r.value_si AS value FROM reading r"
+        + (" JOIN test t ON t.id = r.test_id" + _unit_filter(unit_ids, "t.unit_id")
+           if unit_ids is not None else ""))
     readings = readings[readings["test_id"].isin(tests.index)]
-    readings["cylinder"] = readings["cylinder"].astype("Int64")
+    readings["kind"] = readings["kind"].astype(object)
+    readings["cylinder"] = readings["cylinder"].astype("Int64").replace(0, pd.NA)
     readings["value"] = readings["value"].astype(float)
 
     events = _query(engine, "SELECT id AS event_id, unit_id, date, hours, kind, cylinders, note "

@@ -76,12 +76,17 @@ def _store(conn: Connection, result: Assessment, week: dt.date, day: dt.date,
         chunk = ",".join(str(u) for u in ids[start:start + 1000])
         conn.execute(text(f"DELETE FROM health_snapshot WHERE week_start = :w AND unit_id IN "
                           f"({chunk})"), {"w": week})
-    reasons = {uid: grp[["code", "level", "text", "numbers", "test_id"]].to_dict("records")
-               for uid, grp in result.reasons.groupby("unit_id")}
+    reasons: dict[int, list[dict[str, Any]]] = {}
+    rr = result.reasons
+    for uid, code, level, text_, numbers, test_id in zip(
+            rr["unit_id"], rr["code"], rr["level"], rr["text"], rr["numbers"], rr["test_id"],
+            strict=True):
+        reasons.setdefault(int(uid), []).append({
+            "code": code, "level": level, "text": text_, "numbers": numbers,
+            "test_id": None if test_id is None or pd.isna(test_id) else int(test_id)})
     rows = []
     for uid, u in units.iterrows():
-        rs = [{**r, "test_id": None if pd.isna(r["test_id"]) else int(r["test_id"])}
-              for r in reasons.get(uid, [])]
+        rs = reasons.get(int(uid), [])
         rows.append({
             "unit_id": int(uid), "week_start": week, "as_of": day, "level": u["level"],
             "main_code": u["main_code"] if isinstance(u["main_code"], str) else None,

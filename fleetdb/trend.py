@@ -107,36 +107,6 @@ def _group_max(codes: np.ndarray, values: np.ndarray, n_groups: int) -> np.ndarr
     return np.where(np.isfinite(out), out, np.nan)
 
 
-def _group_sorted(
-    codes: np.ndarray, values: np.ndarray, n_groups: int
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Values sorted within groups, each group's start offset and count."""
-    counts = np.bincount(codes, minlength=n_groups)
-    return values[np.lexsort((values, codes))], np.cumsum(counts) - counts, counts
-
-
-def _group_median(codes: np.ndarray, values: np.ndarray, n_groups: int) -> np.ndarray:
-    """Median per group as ``np.median`` (mean of the two middle values); NaN when empty."""
-    return _sorted_median(*_group_sorted(codes, values, n_groups))
-
-
-def _sorted_median(ordered: np.ndarray, starts: np.ndarray, counts: np.ndarray) -> np.ndarray:
-    out = np.full(len(counts), np.nan)
-    has = counts > 0
-    lo, hi = starts[has] + (counts[has] - 1) // 2, starts[has] + counts[has] // 2
-    out[has] = (ordered[lo] + ordered[hi]) / 2
-    return out
-
-
-def _tie_term(codes: np.ndarray, values: np.ndarray, n_groups: int) -> np.ndarray:
-    """Per group, the sum of t(t - 1)(2t + 5) over runs of t equal values."""
-    order = np.lexsort((values, codes))
-    c, v = codes[order], values[order]
-    new_run = np.r_[True, (c[1:] != c[:-1]) | (v[1:] != v[:-1])][: len(c)]
-    t = np.bincount(np.cumsum(new_run) - 1).astype(float)
-    return _gsum(c[new_run], t * (t - 1) * (2 * t + 5), n_groups)
-
-
 # --------------------------------------------------------------------------- least squares
 
 
@@ -211,14 +181,51 @@ def fit_ols_through_origin(series: ArrayLike, x: ArrayLike, y: ArrayLike) -> pd.
 # --------------------------------------------------------------------------- Theil-Sen
 
 
-def _pairs(codes_sorted: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Index pairs i < j within each group of a group-sorted code array."""
-    n = len(codes_sorted)
-    ends = np.cumsum(np.bincount(codes_sorted))[codes_sorted] if n else np.zeros(0, int)
-    later = ends - 1 - np.arange(n)  # readings after i in its group
-    first = np.repeat(np.arange(n), later)
-    offset = np.arange(len(first)) - np.repeat(np.cumsum(later) - later, later)
-    return first, first + 1 + offset
+_PAIR_BUDGET = 2_000_000  # pairwise slopes held at once: bounds Theil-Sen's memory
+
+
+def _row_ties(sorted_rows: np.ndarray) -> np.ndarray:
+    """Per row of a row-sorted matrix, the sum of t(t - 1)(2t + 5) over runs of t equal values."""
+    m, k = sorted_rows.shape
+    if k == 0:
+        return np.zeros(m)
+    new = np.ones((m, k), dtype=bool)
+    new[:, 1:] = sorted_rows[:, 1:] != sorted_rows[:, :-1]
+    t = np.bincount(np.cumsum(new.ravel()) - 1).astype(float)
+    row_of_run = np.repeat(np.arange(m), new.sum(axis=1))
+    return np.bincount(row_of_run, weights=t * (t - 1) * (2 * t + 5), minlength=m)
+
+
+def _theil_sen_block(xm: np.ndarray, ym: np.ndarray, z: float) -> dict[str, np.ndarray]:
+    """Theil-Sen for a block of series of equal length, one series per row."""
+    m, size = xm.shape
+    iu, ju = np.triu_indices(size, k=1)
+    dx = xm[:, ju] - xm[:, iu]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        slopes = (ym[:, ju] - ym[:, iu]) / dx
+    slopes[dx == 0] = np.nan
+    slopes.sort(axis=1)  # NaN (pairs at one hour) go last
+    valid = np.count_nonzero(dx != 0, axis=1)
+    rows = np.arange(m)
+
+    def at(rank: np.ndarray) -> np.ndarray:
+        if not slopes.shape[1]:
+            return np.full(m, np.nan)
+        safe = np.clip(np.nan_to_num(rank, nan=0.0), 0, slopes.shape[1] - 1)
+        return slopes[rows, safe.astype(int)]
+
+    has = valid > 0
+    median = np.where(has, (at((valid - 1) // 2) + at(valid // 2)) / 2, np.nan)
+    var_s = (size * (size - 1) * (2 * size + 5) - _row_ties(np.sort(xm, axis=1))
+             - _row_ties(np.sort(ym, axis=1))) / 18
+    with np.errstate(invalid="ignore"):
+        width = z * np.sqrt(var_s)
+    ok = has & np.isfinite(width)
+    low = np.where(ok, at(np.maximum(np.round((valid - width) / 2) - 1, 0)), np.nan)
+    high = np.where(ok, at(np.minimum(np.round((valid + width) / 2), valid - 1)), np.nan)
+    intercept = np.median(ym, axis=1) - median * np.median(xm, axis=1)
+    return {"n_pairs": valid, "slope": median, "intercept": intercept, "low_slope": low,
+            "high_slope": high}
 
 
 def fit_theil_sen(
@@ -228,7 +235,8 @@ def fit_theil_sen(
 
     Slope: median of (y_j - y_i)/(x_j - x_i) over pairs with x_i != x_j; intercept
     ("separate"): median(y) - slope*median(x); interval: Sen (1968) eq. 2.6 with x- and y-tie
-    corrections and scipy's rounding of the ranks. Memory grows as n^2/2 per series.
+    corrections and scipy's rounding of the ranks. Series of equal length are handled
+    together as the rows of a matrix, in blocks that bound the memory used.
 
     :param series: series key per reading.
     :param x: engine hours per reading.
@@ -239,29 +247,23 @@ def fit_theil_sen(
     codes, keys, xa, ya, _ = _prepare(series, x, y)
     g = len(keys)
     order = np.argsort(codes, kind="stable")
-    c, xs, ys = codes[order], xa[order], ya[order]
-    i, j = _pairs(c)
-    dx = xs[j] - xs[i]
-    keep = dx != 0
-    slopes, pair_codes = (ys[j] - ys[i])[keep] / dx[keep], c[i][keep]
-    ordered, starts, n_pairs = _group_sorted(pair_codes, slopes, g)
-    slope = _sorted_median(ordered, starts, n_pairs)
-    n = _gsum(c, None, g)
-    var_s = (n * (n - 1) * (2 * n + 5) - _tie_term(c, xs, g) - _tie_term(c, ys, g)) / 18
-    with np.errstate(invalid="ignore"):
-        width = stats.norm.ppf(1 - (1 - confidence) / 2) * np.sqrt(var_s)
-    ok = (n_pairs > 0) & np.isfinite(width)
-    bounds = {}
-    for name, rank in (("low_slope", np.maximum(np.round((n_pairs - width) / 2) - 1, 0)),
-                       ("high_slope", np.minimum(np.round((n_pairs + width) / 2), n_pairs - 1))):
-        bounds[name] = np.full(g, np.nan)
-        bounds[name][ok] = ordered[(starts + rank)[ok].astype(int)]
-    intercept = _group_median(c, ys, g) - slope * _group_median(c, xs, g)
-    return pd.DataFrame(
-        {"n": n.astype(int), "n_pairs": n_pairs, "slope": slope, "intercept": intercept,
-         **bounds},
-        index=keys,
-    )
+    xs, ys = xa[order], ya[order]
+    n = np.bincount(codes, minlength=g)
+    starts = np.cumsum(n) - n
+    out = {k: np.full(g, np.nan) for k in ("slope", "intercept", "low_slope", "high_slope")}
+    out["n_pairs"] = np.zeros(g, dtype=int)
+    z = stats.norm.ppf(1 - (1 - confidence) / 2)
+    for size in np.unique(n[n > 0]):
+        groups = np.flatnonzero(n == size)
+        per_block = max(1, _PAIR_BUDGET // max(size * (size - 1) // 2, 1))
+        for first in range(0, len(groups), per_block):
+            block = groups[first:first + per_block]
+            idx = starts[block][:, None] + np.arange(size)
+            for key, values in _theil_sen_block(xs[idx], ys[idx], z).items():
+                out[key][block] = values
+    return pd.DataFrame({"n": n.astype(int), "n_pairs": out["n_pairs"], "slope": out["slope"],
+                         "intercept": out["intercept"], "low_slope": out["low_slope"],
+                         "high_slope": out["high_slope"]}, index=keys)
 
 
 # --------------------------------------------------------------------------- limit crossing
