@@ -13,7 +13,7 @@ import pandas as pd
 from sqlalchemy import text
 from sqlalchemy.engine import Engine
 
-from fleetdb import atmosphere
+from fleetdb import arrowread, atmosphere
 
 
 @dataclass
@@ -48,20 +48,21 @@ def _sqlite_file(engine: Engine) -> str | None:
     return None
 
 
-def _readings_query(engine: Engine, sql: str) -> pd.DataFrame:
-    """The big read: through Arrow (ADBC) for a SQLite file, else the driver cursor.
+#: Above this many readings a SQLite file is read through Arrow in a child process.
+ARROW_READ_MIN_ROWS = 1_000_000
+
+
+def _readings_query(engine: Engine, sql: str, whole_fleet: bool) -> pd.DataFrame:
+    """The big read: a large SQLite read goes through Arrow (see :mod:`fleetdb.arrowread`).
 
     The query must return no NULLs: ADBC infers column types from the first rows.
     """
     path = _sqlite_file(engine)
-    if path is not None:
-        try:
-            import adbc_driver_sqlite.dbapi as adbc
-        except ImportError:  # pragma: no cover - adbc is a dependency; keep a plain path
-            return _query(engine, sql)
-        with adbc.connect(path) as conn, conn.cursor() as cursor:
-            cursor.execute(sql)
-            return cursor.fetch_arrow_table().to_pandas()
+    if path is not None and whole_fleet and arrowread.available():
+        with engine.connect() as conn:
+            rows = conn.execute(text("SELECT COALESCE(MAX(id), 0) FROM reading")).scalar_one()
+        if rows >= ARROW_READ_MIN_ROWS:
+            return arrowread.read_sqlite(path, sql)
     return _query(engine, sql)
 
 
@@ -114,7 +115,7 @@ def load(engine: Engine, unit_ids: list[int] | None = None,
         engine, "SELECT r.test_id, r.kind, COALESCE(r.cylinder, 0) AS cylinder, "
         "r.value_si AS value FROM reading r"
         + (" JOIN test t ON t.id = r.test_id" + _unit_filter(unit_ids, "t.unit_id")
-           if unit_ids is not None else ""))
+           if unit_ids is not None else ""), whole_fleet=unit_ids is None)
     readings = readings[readings["test_id"].isin(tests.index)]
     readings["kind"] = readings["kind"].astype(object)
     readings["cylinder"] = readings["cylinder"].astype("Int64").replace(0, pd.NA)

@@ -137,8 +137,9 @@ def test_logging_a_test_refreshes_the_unit(demo: Engine) -> None:
     test_id = logbook.log_test(demo, "LT-101", when.isoformat(sep=" "), hours, readings,
                                conditions={"crank_rpm": "240", "battery_v": "10.5",
                                            "engine_temp_c": "80", "throttle_open": "yes"})
-    health.refresh_units(demo, [uid], AS_OF)
-    row = health.board(demo, AS_OF, search="LT-101")["rows"][0]
+    day = when.date()
+    health.refresh_units(demo, [uid], day)
+    row = health.board(demo, day, search="LT-101")["rows"][0]
     assert row["level"] == "act" and "below_minimum" in row["reasons"]
     verdict = health.test_verdict(demo, test_id)
     assert verdict["trustworthy"] and verdict["ratio"] < 0.75
