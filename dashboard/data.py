@@ -52,6 +52,7 @@ FIELD_LABELS: dict[str, str] = {
     "throttle_open": "Throttle held wide open",
     "technician": "Technician",
     "note": "Note",
+    "value": "Readings",
 }
 CONDITION_FIELDS = ("battery_v", "crank_rpm", "engine_temp_c", "baro_kpa", "throttle_open",
                     "technician", "note")

@@ -166,6 +166,12 @@ def test_form_problems_are_the_cli_problems(store_url: str, changes: dict[str, A
     assert where in [p.where for p in result.problems]
 
 
+def test_saving_without_readings_names_the_readings(store_url: str) -> None:
+    result = data.save_entry(store_url, _entry(fleet_no=None, cylinders={}))
+    assert [(p.where, p.message) for p in result.problems] == [
+        ("Readings", "a test needs at least one reading")]  # fleetdb.logbook's own words
+
+
 def test_live_check_skips_blank_cylinders_and_save_reports_them(store_url: str) -> None:
     entry = _entry(cylinders={1: "150", 2: None, 3: "", 4: "149"})
     assert data.check_entry(store_url, entry) == []
