@@ -1,0 +1,132 @@
+"""The fleetdb command end to end, on a real SQLite file and on PostgreSQL."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+from click.testing import CliRunner
+
+from fleetdb.cli import cli
+from tests.conftest import DATA
+
+
+def run(args: list[str], db: str, code: int = 0) -> str:
+    result = CliRunner().invoke(cli, [*args, "--db", db], catch_exceptions=False)
+    assert result.exit_code == code, result.output
+    assert "Traceback" not in result.output
+    return result.output
+
+
+@pytest.fixture
+def store(db_url: str) -> str:
+    run(["init"], db_url)
+    run(["import", str(DATA / "fleet.csv"), str(DATA / "tests.csv"), str(DATA / "events.csv")],
+        db_url)
+    return db_url
+
+
+def test_init_import_and_listings(store: str) -> None:
+    units = json.loads(run(["units", "--json"], store))
+    assert [u["fleet_no"] for u in units] == ["T-101", "T-102", "T-201", "T-301"]
+    assert units[0]["tests"] == 1 and units[0]["last_hours"] == 1200.0
+    unit = json.loads(run(["unit", "T-101", "--json", "--units", "psi"], store))
+    assert unit["tests"][0]["readings"]["compression"] == {"1": 150.0, "2": 148.0, "3": 145.0,
+                                                          "4": 120.0}
+    assert unit["tests"][0]["readings"]["vacuum_cranking"] == {"inHg": 1.0, "kPa": 3.4}
+    assert unit["events"][0]["kind"] == "valves"
+    assert unit["health"]["level"] in ("act", "plan", "retest", "watch", "sound")
+    kpa = json.loads(run(["unit", "T-301", "--json", "--units", "kPa"], store))
+    assert kpa["tests"][0]["readings"]["compression"]["2"] == 2069.0
+
+
+def test_reimport_is_a_no_op(store: str) -> None:
+    out = run(["import", str(DATA / "tests.csv")], store)
+    assert "already imported as batch" in out
+
+
+def test_board_json_shape(store: str) -> None:
+    board = json.loads(run(["board", "--json", "--as-of", "2024-06-30"], store))
+    assert set(board) == {"week_start", "as_of", "previous_week_start", "total", "counts",
+                          "counts_by_site", "rows"}
+    assert board["total"] == 4
+    row = next(r for r in board["rows"] if r["fleet_no"] == "T-301")
+    # Diesel cylinders 2100/2069/2000 kPa against a 2069 kPa minimum: cylinder 3 is below
+    # (domain check value 17, a medium-duty truck diesel service procedure).
+    assert row["level"] == "act" and "below_minimum" in row["reasons"]
+    assert set(row) >= {"fleet_no", "site", "engine_family", "level", "main_code", "main_text",
+                        "reasons", "projected_date", "last_tested_at", "change"}
+    text = run(["board", "--as-of", "2024-06-30", "--level", "act"], store)
+    assert "T-301" in text and "T-102" not in text
+
+
+def test_log_then_void(store: str) -> None:
+    out = run(["log", "T-102", "--at", "2024-06-01 10:00", "--hours", "950",
+               "--compression", "150,149,148,151", "--vacuum-cranking", "0.5",
+               "--battery-v", "10.4", "--crank-rpm", "210", "--engine-temp-c", "82",
+               "--throttle-open", "--technician", "AK"], store)
+    assert out.startswith("Logged test ")
+    test_id = int(out.split()[2])
+    out = run(["void", str(test_id), "--reason", "gauge hose leaked"], store)
+    assert "Voided test" in out
+    unit = json.loads(run(["unit", "T-102", "--json"], store))
+    assert unit["tests"][0]["voided"] and unit["tests"][0]["void_reason"] == "gauge hose leaked"
+
+
+@pytest.mark.parametrize(("args", "message"), [
+    (["log", "T-101", "--at", "2024-06-01", "--hours", "1300", "--compression",
+      "150,150,150,150,150"], "cylinder 5 on a 4-cylinder engine"),
+    (["log", "T-101", "--at", "2024-06-01", "--hours", "900", "--compression", "150"],
+     "hour meters only go forward"),
+    (["log", "NOPE", "--at", "2024-06-01", "--hours", "900", "--compression", "150"],
+     "unknown fleet number 'NOPE'"),
+    (["log", "T-101", "--at", "2024-06-01", "--hours", "1300", "--compression", "abc"],
+     "is not a number with a unit"),
+    (["unit", "NOPE"], "no unit with fleet number 'NOPE'"),
+    (["void", "999", "--reason", "x"], "no test with id 999"),
+])
+def test_errors_are_messages_not_tracebacks(store: str, args: list[str], message: str) -> None:
+    result = CliRunner().invoke(cli, [*args, "--db", store])
+    assert result.exit_code != 0
+    assert message in result.output
+    assert result.exception is None or isinstance(result.exception, SystemExit)
+
+
+def test_bad_file_names_line_and_column(store: str, tmp_path: Path) -> None:
+    bad = tmp_path / "bad.csv"
+    bad.write_text("fleet_no,tested_at,hours,kind,cylinder,value,units\n"
+                   "T-101,2024-07-01,1400,compression,9,150,psi\n")
+    result = CliRunner().invoke(cli, ["import", str(bad), "--db", store])
+    assert result.exit_code == 1
+    assert f"{bad}, line 2, column cylinder: cylinder 9 on a 4-cylinder engine" in result.output
+
+
+def test_uninitialised_database_says_what_to_do(tmp_path: Path) -> None:
+    result = CliRunner().invoke(cli, ["units", "--db", str(tmp_path / "new.sqlite")])
+    assert result.exit_code == 1
+    assert "run 'fleetdb init'" in result.output
+
+
+def test_where_and_env(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("FLEETDB_DATABASE_URL", str(tmp_path / "env.sqlite"))
+    out = CliRunner().invoke(cli, ["where"]).output
+    assert "env.sqlite" in out and "FLEETDB_DATABASE_URL" in out
+    out = CliRunner().invoke(cli, ["where", "--db", str(tmp_path / "flag.sqlite")]).output
+    assert "flag.sqlite" in out and "(from --db)" in out
+
+
+def test_defaults_lists_sources() -> None:
+    rows = json.loads(CliRunner().invoke(cli, ["defaults", "--json"]).output)
+    by_name = {r["name"]: r for r in rows}
+    assert by_name["spread_min_ratio"]["value"] == 0.75
+    assert by_name["min_crank_rpm_spark"]["source"] == "from memory, unverified"
+    assert all(r["source"] for r in rows)
+
+
+def test_every_command_has_help_with_example() -> None:
+    for name, command in cli.commands.items():
+        out = CliRunner().invoke(cli, [name, "--help"]).output
+        assert command.help and "Example:" in out, name
+        readme = (Path(__file__).parent.parent / "README.md").read_text()
+        assert f"fleetdb {name}" in readme, f"README does not mention 'fleetdb {name}'"
