@@ -68,7 +68,11 @@ def _stored_family_params(conn: Connection, week: dt.date) -> pd.DataFrame | Non
 
 def _store(conn: Connection, result: Assessment, week: dt.date, day: dt.date,
            full: bool) -> None:
-    """Write the snapshot rows (replacing this week's rows of these units)."""
+    """Write the snapshot rows (replacing this week's rows of these units).
+
+    Snapshot rows are derived data, recomputed at will; tests and readings are never
+    deleted.
+    """
     units = result.units
     ids = [int(u) for u in units.index]
     at = stamp(conn)
@@ -170,14 +174,13 @@ def assess_units(engine: Engine, unit_ids: list[int], as_of: dt.date | None = No
 def refresh_units(engine: Engine, unit_ids: list[int], as_of: dt.date | None = None) -> None:
     """Recompute a few units (after a logged test or an import) and update this week's rows.
 
-    A week with no snapshot yet gets a full refresh instead, so the board is never partial.
+    They pool with the families' latest stored statistics. A week with no snapshot yet
+    keeps just these rows; the board completes the week with a full refresh the first
+    time it is read, so it is never partial. Many units at once: a full refresh.
     """
     day, _ = _as_of(as_of)
     week = week_start(day)
-    with engine.connect() as conn:
-        have = conn.execute(text("SELECT COUNT(*) FROM health_snapshot WHERE week_start = :w"),
-                            {"w": week}).scalar_one()
-    if not have or len(unit_ids) > 2000:
+    if len(unit_ids) > 2000:
         refresh_fleet(engine, day)
         return
     result = assess_units(engine, unit_ids, day)
@@ -425,8 +428,9 @@ def test_verdict(engine: Engine, test_id: int) -> dict[str, Any]:
             from fleetdb.errors import FleetDBError
             raise FleetDBError(f"no test with id {test_id}")
         week = week_start(dt.date.today())
-        previous = conn.execute(text("SELECT level FROM health_snapshot WHERE unit_id = :u "
-                                     "AND week_start = :w"), {"u": row[0], "w": week}).scalar()
+        previous = conn.execute(text(
+            "SELECT level FROM health_snapshot WHERE unit_id = :u AND week_start <= :w "
+            "ORDER BY week_start DESC LIMIT 1"), {"u": row[0], "w": week}).scalar()
     refresh_units(engine, [int(row[0])])
     result = assess_units(engine, [int(row[0])])
     summ = result.checks.tests.loc[test_id]

@@ -19,6 +19,7 @@ import numpy as np
 import pandas as pd
 from sqlalchemy import text
 from sqlalchemy.engine import Connection, Engine
+from sqlalchemy.exc import IntegrityError
 
 from fleetdb import atmosphere, validate
 from fleetdb.csvfiles import KIND_ORDER, CsvFile, read_csv
@@ -158,12 +159,21 @@ def import_csv(engine: Engine, csv: CsvFile, *, dry_run: bool = False, by: str |
         if previous is not None:
             report.batch_id, report.outcome = previous, "already_imported"
             return report
-        batch_id = conn.execute(text(
-            "INSERT INTO import_batch (file_name, content_sha256, file_kind, rows_read, "
-            "rows_written, rows_present, outcome, created_at, created_by) VALUES "
-            "(:name, :sha, :kind, :rows, 0, 0, 'importing', :at, :by) RETURNING id"),
-            {"name": Path(csv.name).name[:255], "sha": csv.sha256, "kind": csv.kind,
-             "rows": len(csv.frame), "at": stamp(conn), "by": by}).scalar_one()
+        try:
+            batch_id = conn.execute(text(
+                "INSERT INTO import_batch (file_name, content_sha256, file_kind, rows_read, "
+                "rows_written, rows_present, outcome, created_at, created_by) VALUES "
+                "(:name, :sha, :kind, :rows, 0, 0, 'importing', :at, :by) RETURNING id"),
+                {"name": Path(csv.name).name[:255], "sha": csv.sha256, "kind": csv.kind,
+                 "rows": len(csv.frame), "at": stamp(conn), "by": by}).scalar_one()
+        except IntegrityError:
+            # The same content is being imported at this very moment by another writer.
+            conn.rollback()
+            report.batch_id = conn.execute(text(
+                "SELECT id FROM import_batch WHERE content_sha256 = :h"),
+                {"h": csv.sha256}).scalar()
+            report.outcome = "already_imported"
+            return report
         from fleetdb.registry import import_fleet
 
         writer = {"fleet": import_fleet, "tests": _import_tests, "events": _import_events}

@@ -166,3 +166,40 @@ def health_summary(report: dict[str, Any], units: str = "psi") -> dict[str, Any]
         "hours_per_week": _num(report["unit"]["hours_per_week"]), "units": units,
         "wear": wear, "trust": {str(t["test_id"]): t["trustworthy"] for t in report["tests"]},
     }
+
+
+def unit_engine(engine: Engine, fleet_no: str) -> dict[str, Any]:
+    """A unit's engine family and site, without its tests (for forms).
+
+    :param fleet_no: the unit's fleet number.
+    """
+    with engine.connect() as conn:
+        row = conn.execute(text(
+            "SELECT u.id, u.fleet_no, s.name, s.elevation_m, f.name, f.fuel, f.cylinders, "
+            "f.banks, f.min_compression_kpa, f.min_ratio FROM unit u "
+            "JOIN site s ON s.id = u.site_id JOIN engine_family f ON f.id = u.family_id "
+            "WHERE u.fleet_no = :f"), {"f": fleet_no}).first()
+    if row is None:
+        raise UnitNotFound(f"no unit with fleet number {fleet_no!r}; 'fleetdb units' lists them")
+    return {"unit_id": int(row[0]), "fleet_no": row[1], "site": row[2],
+            "site_elevation_m": float(row[3]), "engine_family": row[4], "fuel": row[5],
+            "cylinders": int(row[6]), "banks": row[7], "min_compression_kpa": float(row[8]),
+            "min_ratio": float(row[9])}
+
+
+def find_units(engine: Engine, search: str | None = None, limit: int = 50) -> list[dict[str, Any]]:
+    """Fleet numbers containing ``search`` (case-insensitive), for type-ahead pickers.
+
+    :param search: text to look for; None or blank lists the first units.
+    :param limit: at most this many.
+    """
+    where, params = "", {"n": int(limit)}
+    if search and search.strip():
+        where = " WHERE LOWER(u.fleet_no) LIKE :s"
+        params["s"] = f"%{search.strip().lower()}%"
+    with engine.connect() as conn:
+        rows = conn.execute(text(
+            "SELECT u.fleet_no, s.name, f.name FROM unit u JOIN site s ON s.id = u.site_id "
+            "JOIN engine_family f ON f.id = u.family_id" + where
+            + " ORDER BY u.fleet_no LIMIT :n"), params).all()
+    return [{"fleet_no": r[0], "site": r[1], "engine_family": r[2]} for r in rows]
