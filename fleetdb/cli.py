@@ -443,19 +443,57 @@ def refresh(as_of: Any, db: str | None) -> None:
                f"{counts}")
 
 
+def serve_options(func: Callable) -> Callable:
+    """``--host`` and ``--port`` for the dashboard."""
+    func = click.option("--port", default=8050, show_default=True, type=int,
+                        help="Port to listen on.")(func)
+    return click.option("--host", default="127.0.0.1", show_default=True,
+                        help="Address to listen on.")(func)
+
+
+def _serve(url: str, host: str, port: int) -> None:
+    from dashboard import create_app
+
+    app = create_app(url)
+    click.echo(f"Dashboard on http://{host}:{port}/  (Ctrl-C to stop)")
+    from waitress import serve as waitress_serve
+
+    waitress_serve(app.server, host=host, port=port, threads=8, _quiet=True)
+
+
+@cli.command()
+@serve_options
+@db_option
+@friendly_errors
+def serve(host: str, port: int, db: str | None) -> None:
+    """Serve the dashboard: health board, unit history, test logging, fleet wear.
+
+    \b
+    Example:
+        fleetdb serve --port 8050
+    """
+    url = config.database_url(db)
+    _engine(db)
+    _serve(url, host, port)
+
+
 @cli.command()
 @as_of_option
 @click.option("--seed", default=42, show_default=True, help="Random seed of the demo history.")
+@click.option("--serve/--no-serve", "then_serve", default=True, show_default=True,
+              help="Serve the dashboard afterwards, until Ctrl-C.")
+@serve_options
 @db_option
 @friendly_errors
-def demo(as_of: Any, seed: int, db: str | None) -> None:
-    """Build the invented demo fleet into the database and print its board.
+def demo(as_of: Any, seed: int, then_serve: bool, host: str, port: int,
+         db: str | None) -> None:
+    """Build the invented demo fleet, print its board, then serve the dashboard.
 
     Running it again on the same database changes nothing.
 
     \b
     Example:
-        fleetdb demo --db demo.sqlite
+        fleetdb demo --db demo.sqlite --no-serve
     """
     from fleetdb import demo as demo_mod
     from fleetdb import migrate
@@ -468,7 +506,10 @@ def demo(as_of: Any, seed: int, db: str | None) -> None:
         click.echo(line)
     click.echo("")
     ctx = click.get_current_context()
-    ctx.invoke(board, as_of=as_of, as_json=False, db=db)
+    ctx.invoke(board, as_of=as_of, site=None, family=None, level=None, search=None,
+               as_json=False, db=db)
+    if then_serve:
+        _serve(url, host, port)
 
 
 @cli.command()
