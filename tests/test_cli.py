@@ -130,3 +130,12 @@ def test_every_command_has_help_with_example() -> None:
         assert command.help and "Example:" in out, name
         readme = (Path(__file__).parent.parent / "README.md").read_text()
         assert f"fleetdb {name}" in readme, f"README does not mention 'fleetdb {name}'"
+
+
+def test_demo_twice_changes_nothing(db_url: str) -> None:
+    first = run(["demo", "--as-of", "2026-12-01", "--no-serve"], db_url)
+    assert "wrote" in first and "Week of 2026-11-30" in first
+    before = json.loads(run(["units", "--json"], db_url))
+    second = run(["demo", "--as-of", "2026-12-01", "--no-serve"], db_url)
+    assert "already in this database" in second
+    assert json.loads(run(["units", "--json"], db_url)) == before
