@@ -255,3 +255,45 @@ class FamilyWear(SQLModel, table=True):
     spread_pooled_df: float | None = None
     n_series: int = 0
     computed_at: datetime = Field(default_factory=_utcnow)
+
+
+PLAN_STATUSES = ("new", "booked", "rebooked")
+
+
+class OverhaulPlan(SQLModel, table=True):
+    """A committed overhaul plan: who, when, as of which day, with which shop settings.
+
+    Never deleted: a newer plan supersedes it (the latest ``id`` at or before a day wins).
+    """
+
+    __tablename__ = "overhaul_plan"
+    id: int | None = Field(default=None, primary_key=True)
+    created_at: datetime = Field(default_factory=_utcnow)
+    created_by: str = Field(sa_column=Column(String(80), nullable=False))
+    as_of: date = Field(index=True)
+    week_start: date
+    weeks: int = 13
+    settings_json: str = Field(default="{}", sa_column=Column(Text(), nullable=False))
+    l_max: int | None = None  # weeks; None when the plan has no job
+    late_count: int = 0
+    job_count: int = 0
+
+
+class OverhaulBooking(SQLModel, table=True):
+    """One unit's overhaul week in a committed plan."""
+
+    __tablename__ = "overhaul_booking"
+    __table_args__ = (
+        UniqueConstraint("plan_id", "unit_id", name="uq_overhaul_booking_plan_unit"),
+        CheckConstraint(_in("status", PLAN_STATUSES), name="status"),
+        CheckConstraint("priority >= 0", name="priority"),
+    )
+    id: int | None = Field(default=None, primary_key=True)
+    plan_id: int = Field(foreign_key="overhaul_plan.id", index=True)
+    unit_id: int = Field(foreign_key="unit.id", index=True)
+    site_id: int = Field(foreign_key="site.id")
+    week_start: date  # Monday of the booked ISO week
+    due_week_start: date  # Monday of the week of the conservative projected limit
+    lateness_weeks: int = 0  # > 0: the overhaul comes after the projected limit
+    priority: int = 0  # weeks the planner moved the effective due week earlier
+    status: str = Field(sa_column=Column(String(10), nullable=False))
