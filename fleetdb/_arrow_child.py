@@ -1,6 +1,11 @@
-"""The child side of :mod:`fleetdb.arrowread`: imports only the Arrow SQLite driver."""
+"""The child side of :mod:`fleetdb.arrowread`: ``python -m fleetdb._arrow_child DB SQL OUT``.
+
+Imports only the Arrow SQLite driver, runs one query and writes an Arrow IPC file.
+"""
 
 from __future__ import annotations
+
+import sys
 
 
 def read_to_ipc(path: str, sql: str, out_path: str) -> int:
@@ -14,3 +19,7 @@ def read_to_ipc(path: str, sql: str, out_path: str) -> int:
     with pa.OSFile(out_path, "wb") as sink, pa.ipc.new_file(sink, table.schema) as writer:
         writer.write_table(table)
     return table.num_rows
+
+
+if __name__ == "__main__":
+    read_to_ipc(sys.argv[1], sys.argv[2], sys.argv[3])

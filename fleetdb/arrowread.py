@@ -9,14 +9,12 @@ result back as an Arrow IPC file, which the parent maps without copying.
 
 from __future__ import annotations
 
-import multiprocessing
 import os
+import subprocess
+import sys
 import tempfile
-from concurrent.futures import ProcessPoolExecutor
 
 import pandas as pd
-
-from fleetdb._arrow_child import read_to_ipc
 
 
 def available() -> bool:
@@ -36,15 +34,17 @@ def read_sqlite(path: str, sql: str) -> pd.DataFrame:
 
     :param path: the SQLite database file.
     :param sql: a SELECT statement.
+    :raises RuntimeError: when the child fails (its message included).
     """
     import pyarrow as pa
 
     fd, out_path = tempfile.mkstemp(prefix="fleetdb-read-", suffix=".arrow")
     os.close(fd)
     try:
-        context = multiprocessing.get_context("spawn")
-        with ProcessPoolExecutor(max_workers=1, mp_context=context) as pool:
-            pool.submit(read_to_ipc, path, sql, out_path).result()
+        done = subprocess.run([sys.executable, "-m", "fleetdb._arrow_child", path, sql,
+                               out_path], capture_output=True, text=True, check=False)
+        if done.returncode != 0:
+            raise RuntimeError(f"Arrow read of {path} failed: {done.stderr.strip()[-500:]}")
         with pa.memory_map(out_path, "r") as source:
             return pa.ipc.open_file(source).read_all().to_pandas()
     finally:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import hashlib
+import io
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -94,26 +95,28 @@ def parse_csv_bytes(raw: bytes, name: str) -> CsvFile:
     """Parse the bytes of an import file (see :func:`read_csv`)."""
     digest = hashlib.sha256(raw).hexdigest()
     try:
-        text = raw.decode("utf-8-sig")
+        raw.decode("utf-8-sig")  # validate only; the parser reads the bytes
     except UnicodeDecodeError as exc:
         line = raw[: exc.start].count(b"\n") + 1
         raise InvalidInput([Problem(name, line, None,
             "not UTF-8 text; save the sheet as 'CSV UTF-8'")]) from exc
-    if "\x00" in text:
+    if b"\x00" in raw:
         raise InvalidInput([Problem(name, None, None, "holds NUL bytes: not a CSV text file")])
-    if not text.strip():
+    if not raw.strip() or raw.strip() == b"\xef\xbb\xbf":
         raise InvalidInput([Problem(name, None, None, "file is empty")])
-    import io
-
     try:
-        frame = pd.read_csv(io.StringIO(text), dtype=str, keep_default_na=False,
-                            skipinitialspace=True, skip_blank_lines=False, engine="c")
+        frame = pd.read_csv(io.BytesIO(raw), dtype=str, keep_default_na=False,
+                            skipinitialspace=True, skip_blank_lines=False, engine="c",
+                            encoding="utf-8-sig")
     except (pd.errors.ParserError, ValueError) as exc:
         raise InvalidInput([Problem(name, None, None, f"not a readable CSV: {exc}")]) from exc
     frame.columns = [str(c).strip().lower() for c in frame.columns]
     kind = detect_kind(list(frame.columns), name)
     for col in frame.columns:
-        frame[col] = frame[col].astype(str).str.strip()
+        values = frame[col].astype(str)
+        if values.str.endswith((" ", "\t")).any():
+            values = values.str.strip()
+        frame[col] = values
     frame.index = pd.RangeIndex(2, 2 + len(frame))  # index = line number in the file
     blank = (frame == "").all(axis=1)
     if blank.any():

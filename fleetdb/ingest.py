@@ -104,6 +104,56 @@ def bulk_insert(conn: Connection, table: str, columns: list[str], rows: list[tup
     cursor.close()
 
 
+def _python_values(values: object) -> list:
+    """A column slice as Python values for the driver, missing values as None."""
+    if isinstance(values, pd.Series):
+        missing = values.isna()
+        if missing.any():
+            return values.astype(object).where(~missing, None).tolist()
+        values = values.to_numpy()
+    if isinstance(values, np.ndarray):
+        return values.tolist()
+    return list(values)  # type: ignore[call-overload]
+
+
+def bulk_insert_columns(conn: Connection, table: str, names: list[str], columns: list,
+                        progress: Progress | None = None) -> int:
+    """Insert column-wise data in chunks, so only one chunk of row tuples exists at a time.
+
+    :param names: column names in the table.
+    :param columns: one sequence per name (numpy array, Series, list) or a scalar for all.
+    :returns: rows written.
+    """
+    total = next((len(c) for c in columns if hasattr(c, "__len__") and not isinstance(c, str)),
+                 0)
+    if not total:
+        return 0
+    pg = conn.dialect.name == "postgresql"
+    cursor = conn.connection.driver_connection.cursor()
+    sql = (f"INSERT INTO {table} ({', '.join(names)}) VALUES "
+           f"({_placeholders(conn, len(names))})")
+    copy_cm = cursor.copy(f"COPY {table} ({', '.join(names)}) FROM STDIN") if pg else None
+    copy = copy_cm.__enter__() if copy_cm is not None else None
+    try:
+        for start in range(0, total, CHUNK):
+            stop = min(start + CHUNK, total)
+            parts = [[c] * (stop - start) if not hasattr(c, "__len__") or isinstance(c, str)
+                     else _python_values(c[start:stop]) for c in columns]
+            rows = list(zip(*parts, strict=True))
+            if copy is not None:
+                for row in rows:
+                    copy.write_row(row)
+            else:
+                cursor.executemany(sql, rows)
+            if progress:
+                progress(stop, total)
+    finally:
+        if copy_cm is not None:
+            copy_cm.__exit__(None, None, None)
+        cursor.close()
+    return total
+
+
 def _db_time(conn: Connection, values: pd.Series) -> list:
     """Datetimes as the driver wants them (SQLite: SQLAlchemy's text format)."""
     if conn.dialect.name == "sqlite":
@@ -239,24 +289,24 @@ def _import_tests(conn: Connection, csv: CsvFile, report: ImportReport, *, batch
     ids = _allocate_ids(conn, "test", n)
     id_of_gid = pd.Series(ids, index=new_tests.index)
     at = stamp(conn)
-    test_rows = list(zip(
-        ids, new_tests["unit_id"].astype(int).tolist(), _db_time(conn, new_tests["tested_at"]),
-        new_tests["hours"].astype(float).tolist(),
-        *(none_for_na(new_tests[c]) for c in conds),
-        [source] * n, [batch_id] * n, [at] * n, [by] * n, strict=True))
-    bulk_insert(conn, "test", ["id", "unit_id", "tested_at", "hours", *conds, "source",
-                                "batch_id", "created_at", "created_by"], test_rows)
-    new_rows = rows[rows["gid"].isin(new_tests.index)]
-    reading_rows = list(zip(
-        id_of_gid.reindex(new_rows["gid"]).astype(int).tolist(), new_rows["kind"].tolist(),
-        none_for_na(new_rows["cylinder"]), new_rows["value_si"].astype(float).tolist(),
-        new_rows["typed_value"].tolist(), new_rows["typed_unit"].tolist(), strict=True))
-    bulk_insert(conn, "reading", ["test_id", "kind", "cylinder", "value_si", "typed_value",
-                                   "typed_unit"], reading_rows, progress)
+    bulk_insert_columns(
+        conn, "test", ["id", "unit_id", "tested_at", "hours", *conds, "source", "batch_id",
+                       "created_at", "created_by"],
+        [np.asarray(ids, dtype=np.int64), new_tests["unit_id"].to_numpy(dtype=np.int64),
+         _db_time(conn, new_tests["tested_at"]), new_tests["hours"].to_numpy(dtype=float),
+         *(new_tests[c] for c in conds), source, batch_id, at, by])
+    if n != len(tests):
+        rows = rows[rows["gid"].isin(new_tests.index)]
+    readings_written = bulk_insert_columns(
+        conn, "reading", ["test_id", "kind", "cylinder", "value_si", "typed_value",
+                          "typed_unit"],
+        [id_of_gid.reindex(rows["gid"]).to_numpy(dtype=np.int64), rows["kind"],
+         rows["cylinder"], rows["value_si"].to_numpy(dtype=float), rows["typed_value"],
+         rows["typed_unit"]], progress)
     if conn.dialect.name == "postgresql" and n:
         conn.execute(text("SELECT setval(pg_get_serial_sequence('test', 'id'), "
                           "(SELECT MAX(id) FROM test))"))
-    report.written = {"tests": n, "readings": len(reading_rows)}
+    report.written = {"tests": n, "readings": readings_written}
     report.test_ids = ids
 
 

@@ -92,7 +92,7 @@ def number(frame: pd.DataFrame, col: str, problems: Problems, *, required: bool,
         return pd.Series(np.nan, index=frame.index, dtype=float)
     text = frame[col]
     blank = text == ""
-    values = pd.to_numeric(text.where(~blank, None), errors="coerce").astype(float)
+    values = _to_float(text, blank)
     bad = ~blank & (values.isna() | ~np.isfinite(values.fillna(0.0)))
     problems.add(bad, col, lambda line: f"{text[line]!r} is not {what}")
     if required:
@@ -102,6 +102,21 @@ def number(frame: pd.DataFrame, col: str, problems: Problems, *, required: bool,
                  lambda line: f"{text[line]} is outside the plausible range {lo:g} to {hi:g} "
                               f"for {what}")
     return values.where(~bad & ~out_of_range)
+
+
+def _to_float(text: pd.Series, blank: pd.Series) -> pd.Series:
+    """Text to floats, NaN where blank or not a number; through Arrow's cast when it can."""
+    try:
+        import pyarrow as pa
+        import pyarrow.compute as pc
+
+        arr = pa.array(text.where(~blank, None).to_numpy(dtype=object, na_value=None),
+                       type=pa.string())
+        return pd.Series(pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False),
+                         index=text.index, dtype=float)
+    except (ImportError, ValueError, TypeError, ArithmeticError, KeyError):
+        # pyarrow refuses the whole column on one bad cell: parse cell by cell instead.
+        return pd.to_numeric(text.where(~blank, None), errors="coerce").astype(float)
 
 
 def timestamp(frame: pd.DataFrame, col: str, problems: Problems, *, required: bool,

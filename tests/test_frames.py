@@ -1,0 +1,42 @@
+"""Reading the analysis frames: the Arrow child-process read equals the plain read."""
+
+from __future__ import annotations
+
+import pandas as pd
+from sqlalchemy.engine import Engine
+
+from fleetdb import arrowread, frames, ingest
+from tests.conftest import DATA
+
+SQL = ("SELECT r.test_id, r.kind, COALESCE(r.cylinder, 0) AS cylinder, r.value_si AS value "
+       "FROM reading r ORDER BY r.id")
+
+
+def test_arrow_read_sees_committed_rows_still_in_the_wal(sqlite_url: str) -> None:
+    from fleetdb import db, migrate
+
+    migrate.upgrade(sqlite_url)
+    engine: Engine = db.make_engine(sqlite_url)
+    ingest.import_files(engine, [DATA / "fleet.csv", DATA / "tests.csv"])
+    # This process keeps its connection open, so the rows may still sit in the WAL file.
+    with engine.connect():
+        plain = frames._query(engine, SQL)
+        arrow = arrowread.read_sqlite(engine.url.database, SQL)
+    assert len(plain) == 11
+    pd.testing.assert_frame_equal(arrow.astype(plain.dtypes.to_dict()), plain,
+                                  check_dtype=False)
+    engine.dispose()
+
+
+def test_load_through_arrow_equals_plain(sqlite_url: str, monkeypatch) -> None:  # noqa: ANN001
+    from fleetdb import db, migrate
+
+    migrate.upgrade(sqlite_url)
+    engine = db.make_engine(sqlite_url)
+    ingest.import_files(engine, [DATA / "fleet.csv", DATA / "tests.csv"])
+    plain = frames.load(engine)
+    monkeypatch.setattr(frames, "ARROW_READ_MIN_ROWS", 1)
+    fast = frames.load(engine)
+    pd.testing.assert_frame_equal(fast.readings.reset_index(drop=True),
+                                  plain.readings.reset_index(drop=True))
+    engine.dispose()
