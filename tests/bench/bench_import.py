@@ -1,0 +1,659 @@
+"""Import benchmark: ``fleetdb import`` of a large tests file beside the practical floor.
+
+Each repetition starts from a fresh database (``fleetdb init``, then the fleet file) and
+loads the same tests file three ways, each in its own child process:
+
+* **floor**: Python's csv module reading the file and the bare driver writing the same
+  test and reading rows (sqlite3 executemany, or psycopg COPY) in one transaction, with
+  no checks at all: the least work that stores the same content.
+* **ours: import**: ``fleetdb.ingest.import_files``, what ``fleetdb import`` calls: read,
+  validate, convert to SI, group into tests, write, commit.
+* **ours: CLI**: the installed ``fleetdb import`` console script: the same, then the
+  health refresh the command runs after every write.
+
+Time is the child's wall clock; peak memory is the kernel's account of that child
+(``os.wait4``'s ru_maxrss). The variants run interleaved, so a busy spell on the machine
+hits them alike, and the ratio of each repetition is kept beside the ratio of medians.
+After each run the database's counts and column sums are compared with the floor's, so
+the floor is known to have stored what fleetdb stored.
+
+Run by hand (not a test; nothing here asserts a speed)::
+
+    python -m tests.bench.bench_import               # 20,000 units, 3 runs each
+    python -m tests.bench.bench_import --small       # 300 units, 1 run (what CI runs)
+    python -m tests.bench.bench_import --pg postgresql://postgres@127.0.0.1/postgres
+
+Results print as a table and go to ``tests/bench/out/import-*.json`` (git-ignored).
+"""
+
+from __future__ import annotations
+
+import argparse
+import csv
+import json
+import math
+import os
+import sqlite3
+import statistics
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+import uuid
+from dataclasses import asdict, dataclass, field
+from datetime import UTC, datetime
+from decimal import Decimal
+from pathlib import Path
+from typing import Any
+
+# Keep the imports above to the standard library. The floor runs this module in a child
+# process and its time and memory should be the floor's own; and the parent must stay
+# small, since a child's peak RSS (ru_maxrss) counts the parent's size at the fork.
+
+REPO = Path(__file__).resolve().parents[2]
+OUT = Path(__file__).resolve().parent / "out"
+FULL_UNITS = 20_000
+SMALL_UNITS = 300
+FLOOR_CHUNK = 100_000  # reading rows per executemany / COPY while streaming the file
+GOAL_RATIO = 1.5
+GOAL_RSS_BYTES = 2 * 1024**3
+PG_ENV = "FLEETDB_BENCH_PG_URL"
+
+
+@dataclass
+class Measured:
+    """One child process: wall time, peak RSS, exit status."""
+
+    seconds: float
+    peak_rss_bytes: int
+    returncode: int
+    killed_over_rss: bool = False
+    stdout: str = ""
+    stderr: str = ""
+
+
+#: What is measured: key -> label. "floor" is the baseline of every ratio.
+VARIANTS: dict[str, str] = {
+    "floor": "floor",
+    "ingest": "ours: import",
+    "cli": "ours: CLI",
+}
+VARIANT_HELP = {
+    "floor": "csv module + the driver's executemany (SQLite) or COPY (PostgreSQL), one "
+             "transaction, no checks",
+    "ingest": "fleetdb.ingest.import_files: read, validate, convert, group, write, commit",
+    "cli": "the 'fleetdb import' command: the same, then the health refresh it runs after "
+           "every write",
+}
+
+
+@dataclass
+class Variant:
+    """Every run of one variant on one database engine."""
+
+    key: str
+    backend: str
+    runs: list[Measured] = field(default_factory=list)
+    setup_seconds: list[float] = field(default_factory=list)  # init + fleet import, untimed
+    stored: list[list[tuple]] = field(default_factory=list)  # fingerprint after each run
+    error: str | None = None  # why it failed; it is not run again
+
+    @property
+    def label(self) -> str:
+        """The name printed in the table."""
+        return VARIANTS[self.key]
+
+    @property
+    def median_seconds(self) -> float | None:
+        """Median wall time over the runs (None when it never completed)."""
+        return statistics.median(r.seconds for r in self.runs) if self.runs else None
+
+    @property
+    def peak_rss_bytes(self) -> int | None:
+        """Highest peak RSS over the runs."""
+        return max(r.peak_rss_bytes for r in self.runs) if self.runs else None
+
+
+# -- child processes ------------------------------------------------------------------------
+
+def run_measured(cmd: list[str], *, rss_limit_bytes: int | None = None) -> Measured:
+    """Run a command to completion; measure its wall time and peak resident memory.
+
+    :param cmd: the command and its arguments.
+    :param rss_limit_bytes: kill the child if its resident memory goes beyond this (the
+        machine is shared: a runaway import must not take it down).
+    """
+    with tempfile.TemporaryFile("w+") as out, tempfile.TemporaryFile("w+") as err:
+        start = time.perf_counter()
+        proc = subprocess.Popen(cmd, stdout=out, stderr=err, cwd=REPO)
+        killed = threading.Event()
+        done = threading.Event()
+        if rss_limit_bytes:
+            threading.Thread(target=_rss_guard, args=(proc.pid, rss_limit_bytes, killed, done),
+                             daemon=True).start()
+        _, status, usage = os.wait4(proc.pid, 0)
+        seconds = time.perf_counter() - start
+        done.set()
+        proc.returncode = os.waitstatus_to_exitcode(status)
+        out.seek(0)
+        err.seek(0)
+        # ru_maxrss is in kilobytes on Linux.
+        return Measured(seconds, usage.ru_maxrss * 1024, proc.returncode, killed.is_set(),
+                        out.read()[-4000:], err.read()[-4000:])
+
+
+def _rss_guard(pid: int, limit: int, killed: threading.Event, done: threading.Event) -> None:
+    """Poll the child's resident set; kill it beyond ``limit`` bytes."""
+    status = Path(f"/proc/{pid}/status")
+    while not done.wait(0.2):
+        try:
+            rss_kb = next(int(line.split()[1]) for line in status.read_text().splitlines()
+                          if line.startswith("VmRSS:"))
+        except (OSError, StopIteration, ValueError):
+            return
+        if rss_kb * 1024 > limit:
+            killed.set()
+            os.kill(pid, 9)
+            return
+
+
+def fleetdb_command() -> list[str]:
+    """The installed console script beside this interpreter, else ``python -m fleetdb``."""
+    script = Path(sys.executable).parent / "fleetdb"
+    return [str(script)] if script.exists() else [sys.executable, "-m", "fleetdb"]
+
+
+def _check(measured: Measured, what: str) -> Measured:
+    if measured.killed_over_rss:
+        raise RuntimeError(f"{what}: killed, resident memory went over the limit "
+                           f"(peak {measured.peak_rss_bytes / 1e9:.1f} GB)")
+    if measured.returncode != 0:
+        raise RuntimeError(f"{what} failed (exit {measured.returncode}):\n{measured.stderr}")
+    return measured
+
+
+def prepare_database(url: str, fleet_csv: Path) -> float:
+    """``fleetdb init``, then the fleet file through the library; return the seconds taken.
+
+    The fleet goes in without the CLI's health refresh: setting up is not what is measured.
+    """
+    start = time.perf_counter()
+    _check(run_measured([*fleetdb_command(), "init", "--db", url]), "fleetdb init")
+    _check(run_measured(ingest_command(fleet_csv, url)), "import of fleet.csv")
+    return time.perf_counter() - start
+
+
+def ingest_command(csv_file: Path, url: str) -> list[str]:
+    """A child process importing one file through ``fleetdb.ingest`` (no refresh)."""
+    return [sys.executable, "-m", "tests.bench.bench_import", "--ingest", str(csv_file), url]
+
+
+def ingest_file(csv_file: Path, url: str) -> str:
+    """Import one file as ``fleetdb import`` does, minus the health refresh afterwards.
+
+    :param csv_file: a fleet, tests or events file.
+    :param url: the database, already at the newest schema.
+    :returns: the import's summary line.
+    """
+    from fleetdb import config, db, ingest, migrate
+
+    engine = db.get_engine(config.database_url(url))
+    migrate.ensure_current(engine)
+    return "\n".join(r.summary() for r in ingest.import_files(engine, [csv_file]))
+
+
+# -- the floor ------------------------------------------------------------------------------
+
+def load_floor(tests_csv: Path, url: str) -> tuple[int, int]:
+    """Load a tests file with the csv module and the bare driver: no checks of any kind.
+
+    Writes the same columns fleetdb writes (values converted to kPa, the typed text kept,
+    conditions from each test's first row), streaming in chunks inside one transaction. It
+    relies on each test's rows being consecutive, as in the synthetic file; blank
+    condition cells become NULL and the database's own column types parse the numbers.
+
+    :param tests_csv: a tests file whose units are already in the database.
+    :param url: ``sqlite:///path`` or a PostgreSQL URL.
+    :returns: (tests written, readings written).
+    """
+    from fleetdb.units import KPA_PER_UNIT
+
+    factor = {**KPA_PER_UNIT, "%": 1.0}
+    at = datetime.now(UTC).replace(microsecond=0)
+    sqlite = url.startswith("sqlite")
+    throttle = {"yes": 1, "no": 0} if sqlite else {"yes": True, "no": False}
+    db = _FloorSqlite(url) if sqlite else _FloorPostgres(url)
+    unit_ids = db.unit_ids()
+    batch_id = db.new_batch(tests_csv.name, at)
+    test_id = db.max_test_id()
+    tests: list[tuple] = []
+    readings: list[tuple] = []
+    n_tests = n_readings = 0
+    with open(tests_csv, newline="", encoding="utf-8-sig") as handle:
+        reader = csv.reader(handle)
+        col = {name: i for i, name in enumerate(next(reader))}
+        i_fleet, i_at, i_hours = col["fleet_no"], col["tested_at"], col["hours"]
+        i_kind, i_cyl, i_value, i_unit = col["kind"], col["cylinder"], col["value"], col["units"]
+        i_cond = [col[c] for c in ("battery_v", "crank_rpm", "engine_temp_c", "baro_kpa")]
+        i_throttle, i_tech, i_note = col["throttle_open"], col["technician"], col["note"]
+        previous = None
+        for row in reader:
+            key = (row[i_fleet], row[i_at], row[i_hours])
+            if key != previous:
+                previous = key
+                test_id += 1
+                stamp = row[i_at]
+                stamp = stamp + (":00.000000" if len(stamp) == 16 else " 00:00:00.000000")
+                tests.append((test_id, unit_ids[row[i_fleet]], stamp, row[i_hours],
+                              *(row[i] or None for i in i_cond),
+                              throttle.get(row[i_throttle]), row[i_tech] or None,
+                              row[i_note] or None, "csv", batch_id, at, "bench"))
+            value, unit = row[i_value], row[i_unit]
+            readings.append((test_id, row[i_kind], row[i_cyl] or None,
+                             float(value) * factor[unit], value, unit))
+            if len(readings) >= FLOOR_CHUNK:
+                db.write(tests, readings)
+                n_tests, n_readings = n_tests + len(tests), n_readings + len(readings)
+                tests, readings = [], []
+    db.write(tests, readings)
+    db.finish()
+    return n_tests + len(tests), n_readings + len(readings)
+
+
+_TEST_COLUMNS = ("id", "unit_id", "tested_at", "hours", "battery_v", "crank_rpm",
+                 "engine_temp_c", "baro_kpa", "throttle_open", "technician", "note", "source",
+                 "batch_id", "created_at", "created_by")
+_READING_COLUMNS = ("test_id", "kind", "cylinder", "value_si", "typed_value", "typed_unit")
+
+
+class _FloorSqlite:
+    """The bare sqlite3 module, with fleetdb's pragmas (WAL, foreign keys, NORMAL sync)."""
+
+    def __init__(self, url: str):
+        self.conn = sqlite3.connect(url.removeprefix("sqlite:///"), isolation_level=None)
+        for pragma in ("journal_mode=WAL", "foreign_keys=ON", "synchronous=NORMAL"):
+            self.conn.execute(f"PRAGMA {pragma}")
+        self.conn.execute("BEGIN IMMEDIATE")
+        self.insert_test = (f"INSERT INTO test ({', '.join(_TEST_COLUMNS)}) VALUES "
+                            f"({', '.join('?' * len(_TEST_COLUMNS))})")
+        self.insert_reading = (f"INSERT INTO reading ({', '.join(_READING_COLUMNS)}) VALUES "
+                               f"({', '.join('?' * len(_READING_COLUMNS))})")
+
+    def unit_ids(self) -> dict[str, int]:
+        return dict(self.conn.execute("SELECT fleet_no, id FROM unit"))
+
+    def max_test_id(self) -> int:
+        return self.conn.execute("SELECT COALESCE(MAX(id), 0) FROM test").fetchone()[0]
+
+    def new_batch(self, name: str, at: datetime) -> int:
+        return self.conn.execute(
+            "INSERT INTO import_batch (file_name, content_sha256, file_kind, rows_read, "
+            "rows_written, rows_present, outcome, created_at, created_by) "
+            "VALUES (?, ?, 'tests', 0, 0, 0, 'imported', ?, 'bench') RETURNING id",
+            (name, uuid.uuid4().hex, at.strftime("%Y-%m-%d %H:%M:%S.%f"))).fetchone()[0]
+
+    def write(self, tests: list[tuple], readings: list[tuple]) -> None:
+        stamp = tests[0][13].strftime("%Y-%m-%d %H:%M:%S.%f") if tests else None
+        self.conn.executemany(self.insert_test, [t[:13] + (stamp, t[14]) for t in tests])
+        self.conn.executemany(self.insert_reading, readings)
+
+    def finish(self) -> None:
+        self.conn.execute("COMMIT")
+        self.conn.close()
+
+
+class _FloorPostgres:
+    """Bare psycopg: COPY of each chunk, one transaction."""
+
+    def __init__(self, url: str):
+        import psycopg
+
+        self.conn = psycopg.connect(_libpq_url(url))
+
+    def unit_ids(self) -> dict[str, int]:
+        return dict(self.conn.execute("SELECT fleet_no, id FROM unit").fetchall())
+
+    def max_test_id(self) -> int:
+        return self.conn.execute("SELECT COALESCE(MAX(id), 0) FROM test").fetchone()[0]
+
+    def new_batch(self, name: str, at: datetime) -> int:
+        return self.conn.execute(
+            "INSERT INTO import_batch (file_name, content_sha256, file_kind, rows_read, "
+            "rows_written, rows_present, outcome, created_at, created_by) "
+            "VALUES (%s, %s, 'tests', 0, 0, 0, 'imported', %s, 'bench') RETURNING id",
+            (name, uuid.uuid4().hex, at)).fetchone()[0]
+
+    def write(self, tests: list[tuple], readings: list[tuple]) -> None:
+        with self.conn.cursor() as cur:
+            for table, columns, rows in (("test", _TEST_COLUMNS, tests),
+                                         ("reading", _READING_COLUMNS, readings)):
+                with cur.copy(f"COPY {table} ({', '.join(columns)}) FROM STDIN") as copy:
+                    for row in rows:
+                        copy.write_row(row)
+
+    def finish(self) -> None:
+        self.conn.execute("SELECT setval(pg_get_serial_sequence('test', 'id'), "
+                          "(SELECT MAX(id) FROM test))")
+        self.conn.commit()
+        self.conn.close()
+
+
+def _libpq_url(url: str) -> str:
+    """A SQLAlchemy PostgreSQL URL as libpq wants it (no ``+driver``)."""
+    scheme, rest = url.split("://", 1)
+    return "postgresql://" + rest if scheme.startswith("postgres") else url
+
+
+# -- comparing what was stored --------------------------------------------------------------
+
+_FINGERPRINT = (
+    "SELECT COUNT(*), SUM(value_si), COUNT(cylinder), SUM(LENGTH(typed_value)) FROM reading",
+    "SELECT COUNT(*), SUM(hours), SUM(battery_v), SUM(crank_rpm), "
+    "COUNT(baro_kpa), SUM(CASE WHEN throttle_open THEN 1 ELSE 0 END), COUNT(note), "
+    "CAST(MIN(tested_at) AS VARCHAR(40)), CAST(MAX(tested_at) AS VARCHAR(40)) FROM test",
+)
+
+
+def fingerprint(url: str) -> list[tuple]:
+    """Counts and sums over the stored readings and tests, to compare two databases."""
+    if url.startswith("sqlite"):
+        conn: Any = sqlite3.connect(url.removeprefix("sqlite:///"))
+    else:
+        import psycopg
+
+        conn = psycopg.connect(_libpq_url(url))
+    try:
+        return [tuple(conn.execute(q).fetchone()) for q in _FINGERPRINT]
+    finally:
+        conn.close()
+
+
+# -- PostgreSQL scratch databases -----------------------------------------------------------
+
+def _pg_scratch(admin_url: str) -> tuple[str, str]:
+    """Create an empty database beside ``admin_url``'s; return (its URL, its name)."""
+    import psycopg
+
+    name = f"fleetdb_bench_{uuid.uuid4().hex[:10]}"
+    with psycopg.connect(_libpq_url(admin_url), autocommit=True) as conn:
+        conn.execute(f'CREATE DATABASE "{name}"')
+    base, _, _ = _libpq_url(admin_url).rpartition("/")
+    return f"{base}/{name}", name
+
+
+def _pg_drop(admin_url: str, name: str) -> None:
+    import psycopg
+
+    with psycopg.connect(_libpq_url(admin_url), autocommit=True) as conn:
+        conn.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
+
+
+# -- the benchmark --------------------------------------------------------------------------
+
+def run(units: int, repeat: int, *, seed: int = 1, pg_url: str | None = None,
+        data_dir: Path | None = None, rss_limit_gb: float = 10.0,
+        variants: tuple[str, ...] = tuple(VARIANTS)) -> dict[str, Any]:
+    """Generate (or reuse) the synthetic fleet, measure each variant, print, save as JSON.
+
+    :param units: fleet size (40 tests per unit, about 6 readings per test).
+    :param repeat: runs of each variant (medians are reported).
+    :param seed: seed of the synthetic fleet.
+    :param pg_url: also measure on this PostgreSQL server (scratch databases are made and
+        dropped beside the one named in the URL).
+    :param data_dir: where the CSV files are kept between runs.
+    :param rss_limit_gb: kill a child whose resident memory goes beyond this.
+    :param variants: which of :data:`VARIANTS` to run; the floor is always run.
+    :returns: the results, as written to the JSON file.
+    :raises RuntimeError: after printing and saving, when a variant failed or stored other
+        content than the floor.
+    """
+    data_dir = data_dir or OUT / "data" / f"synth-{units}u-seed{seed}"
+    started = time.perf_counter()
+    paths, counts = write_synthetic(data_dir, units, seed)
+    generate_s = time.perf_counter() - started
+    rows = counts["tests"] + counts["readings"]
+    limit = int(rss_limit_gb * 1024**3)
+    load_before = os.getloadavg()
+    keys = ["floor"] + [k for k in VARIANTS if k in variants and k != "floor"]
+    measured: list[Variant] = []
+    problems: list[str] = []
+    with tempfile.TemporaryDirectory(prefix="fleetdb-bench-") as tmp:
+        backends = [("sqlite", None)] + ([("postgresql", pg_url)] if pg_url else [])
+        for backend, admin in backends:
+            group = [Variant(k, backend) for k in keys]
+            for i in range(repeat):
+                for variant in group:  # interleaved, so drift on the machine hits all alike
+                    if variant.error is None:
+                        _one_run(variant, i, paths, Path(tmp), admin, limit)
+            problems += [f"{v.backend} {v.label}: {v.error}" for v in group if v.error]
+            problems += _compare_content(group, counts)
+            measured += group
+    result = {
+        "benchmark": "import",
+        "when": datetime.now(UTC).isoformat(timespec="seconds"),
+        "machine": {"cpus": os.cpu_count(), "loadavg_before": load_before,
+                    "loadavg_after": os.getloadavg(), "python": sys.version.split()[0],
+                    "sqlite": sqlite3.sqlite_version},
+        "commit": _git_commit(),
+        "data": {**counts, "rows": rows, "generate_or_reuse_seconds": round(generate_s, 1),
+                 "tests_csv_bytes": paths["tests"].stat().st_size},
+        "repeat": repeat,
+        "goal": {"ratio": GOAL_RATIO, "peak_rss_bytes": GOAL_RSS_BYTES},
+        "variants": [_as_json(v, rows, measured) for v in measured],
+        "problems": problems,
+    }
+    _print(result, measured)
+    OUT.mkdir(exist_ok=True)
+    stamp = datetime.now(UTC).strftime("%Y%m%dT%H%M%SZ")
+    target = OUT / f"import-{units}u-{stamp}.json"
+    target.write_text(json.dumps(result, indent=2, default=str) + "\n")
+    print(f"results: {target.relative_to(REPO)}")
+    if problems:
+        raise RuntimeError("import benchmark: " + "; ".join(p.splitlines()[0] for p in problems))
+    return result
+
+
+def _git_commit() -> str:
+    """HEAD of the checkout being measured, with ``+dirty`` when fleetdb/ has local changes."""
+    def git(*args: str) -> str:
+        done = subprocess.run(["git", *args], cwd=REPO, capture_output=True, text=True,
+                              check=False)
+        return done.stdout.strip()
+
+    head = git("rev-parse", "--short", "HEAD") or "unknown"
+    return head + ("+dirty" if git("status", "--porcelain", "--", "fleetdb", "migrations")
+                   else "")
+
+
+def write_synthetic(folder: Path, units: int, seed: int) -> tuple[dict[str, Path], dict[str, int]]:
+    """Write (or reuse) the synthetic fleet in a child process; return its paths and counts.
+
+    A child, because the kernel's peak-memory figure of each measured process starts from
+    this process's size at the fork: this one stays small by never importing numpy/pandas.
+    """
+    _check(run_measured([sys.executable, "-m", "tests.bench.synth", str(folder),
+                         "--units", str(units), "--seed", str(seed)]), "tests.bench.synth")
+    counts = json.loads((folder / "synth.json").read_text())
+    return {"fleet": folder / "fleet.csv", "tests": folder / "tests.csv"}, counts
+
+
+def _one_run(variant: Variant, i: int, paths: dict[str, Path], tmp: Path, pg_admin: str | None,
+             rss_limit: int) -> None:
+    """Fresh database with the fleet loaded, then the measured load of the tests file."""
+    if pg_admin:
+        url, db_name = _pg_scratch(pg_admin)
+    else:
+        url, db_name = f"sqlite:///{tmp / f'{variant.key}-{i}.sqlite'}", None
+    commands = {
+        "floor": [sys.executable, "-m", "tests.bench.bench_import", "--floor",
+                  str(paths["tests"]), url],
+        "ingest": ingest_command(paths["tests"], url),
+        "cli": [*fleetdb_command(), "import", str(paths["tests"]), "--db", url],
+    }
+    try:
+        variant.setup_seconds.append(prepare_database(url, paths["fleet"]))
+        run = run_measured(commands[variant.key], rss_limit_bytes=rss_limit)
+        try:
+            _check(run, f"run {i + 1}")
+        except RuntimeError as exc:
+            variant.error = str(exc)
+            print(f"  {variant.backend:10s} {variant.label:12s} run {i + 1}: FAILED after "
+                  f"{run.seconds:.1f} s, peak RSS {run.peak_rss_bytes / 1e6:.0f} MB:\n"
+                  f"{_last_lines(run.stderr)}", flush=True)
+            return
+        variant.runs.append(run)
+        variant.stored.append(fingerprint(url))
+    finally:
+        if db_name:
+            _pg_drop(pg_admin, db_name)
+        else:
+            for suffix in ("", "-wal", "-shm"):
+                Path(url.removeprefix("sqlite:///") + suffix).unlink(missing_ok=True)
+    print(f"  {variant.backend:10s} {variant.label:12s} run {i + 1}: {run.seconds:7.1f} s, "
+          f"peak RSS {run.peak_rss_bytes / 1e6:7.0f} MB", flush=True)
+
+
+def _last_lines(text: str, n: int = 6) -> str:
+    return "\n".join("    " + line for line in text.strip().splitlines()[-n:])
+
+
+def _compare_content(group: list[Variant], counts: dict[str, int]) -> list[str]:
+    """Problems, if a run stored other content than the floor's first run, or not all of it."""
+    floor = group[0]
+    if not floor.stored:
+        return []
+    reference = floor.stored[0]
+    if reference[0][0] != counts["readings"] or reference[1][0] != counts["tests"]:
+        return [f"{floor.backend} floor stored {reference[1][0]} tests and {reference[0][0]} "
+                f"readings; the file holds {counts['tests']} and {counts['readings']}"]
+    problems = []
+    for variant in group:
+        for stored in variant.stored:
+            for got, want in zip(_flat(stored), _flat(reference), strict=True):
+                same = (got is not None and math.isclose(float(got), float(want), rel_tol=1e-9)
+                        if isinstance(want, (int, float, Decimal)) else got == want)
+                if not same:
+                    problems.append(f"{variant.backend} {variant.label} stored other content "
+                                    f"than the floor: {stored} vs {reference}")
+                    break
+    return problems
+
+
+def _flat(stored: list[tuple]) -> list[Any]:
+    return [v for row in stored for v in row]
+
+
+def _floor_of(variant: Variant, group: list[Variant]) -> Variant:
+    return next(v for v in group if v.backend == variant.backend and v.key == "floor")
+
+
+def _ratio(variant: Variant, group: list[Variant]) -> float | None:
+    """Median time over the floor's median time."""
+    floor = _floor_of(variant, group)
+    if variant.median_seconds is None or floor.median_seconds is None:
+        return None
+    return variant.median_seconds / floor.median_seconds
+
+
+def _paired_ratios(variant: Variant, group: list[Variant]) -> list[float]:
+    """Time over the floor's time of the same repetition, one per repetition."""
+    floor = _floor_of(variant, group)
+    return [r.seconds / f.seconds for r, f in zip(variant.runs, floor.runs, strict=False)]
+
+
+def _as_json(variant: Variant, rows: int, group: list[Variant]) -> dict[str, Any]:
+    out = asdict(variant)
+    for run in out["runs"]:
+        run.pop("stdout"), run.pop("stderr")
+    median = variant.median_seconds
+    return {**out, "label": variant.label, "what": VARIANT_HELP[variant.key],
+            "median_seconds": median, "rows_per_second": rows / median if median else None,
+            "peak_rss_bytes": variant.peak_rss_bytes, "ratio_to_floor": _ratio(variant, group),
+            "paired_ratios": _paired_ratios(variant, group)}
+
+
+def _print(result: dict[str, Any], group: list[Variant]) -> None:
+    data = result["data"]
+    print(f"\nimport of tests.csv: {data['units']:,} units, {data['tests']:,} tests, "
+          f"{data['readings']:,} readings = {data['rows']:,} rows written "
+          f"({data['tests_csv_bytes'] / 1e6:.0f} MB of CSV); {result['repeat']} run(s) each, "
+          f"load average before {result['machine']['loadavg_before'][0]:.1f}")
+    head = (f"{'backend':10s}  {'variant':12s}  {'median s':>9s}  {'runs s':20s}  "
+            f"{'rows/s':>9s}  {'peak RSS MB':>11s}  {'x floor':>7s}")
+    print(head)
+    print("-" * len(head))
+    for v in group:
+        runs = " ".join(f"{r.seconds:.1f}" for r in v.runs) + (" FAILED" if v.error else "")
+        median = v.median_seconds
+        ratio = _ratio(v, group)
+        print(f"{v.backend:10s}  {v.label:12s}  "
+              + (f"{median:9.1f}  {runs:20s}  {data['rows'] / median:9,.0f}  "
+                 f"{v.peak_rss_bytes / 1e6:11,.0f}  "
+                 f"{'' if v.key == 'floor' else f'{ratio:7.2f}'}" if median else
+                 f"{'-':>9s}  {runs:20s}"))
+    for v in group:
+        if v.key == "floor" or v.median_seconds is None:
+            continue
+        ratio = _ratio(v, group) or math.nan
+        rss = v.peak_rss_bytes or 0
+        paired = " ".join(f"{r:.2f}" for r in _paired_ratios(v, group))
+        print(f"{v.backend} {v.label}: {ratio:.2f} x floor [per run {paired}] "
+              f"(goal <= {GOAL_RATIO}: "
+              f"{'met' if ratio <= GOAL_RATIO else 'NOT met'}); peak RSS "
+              f"{rss / 1024**3:.2f} GiB (goal < 2 GiB: "
+              f"{'met' if rss < GOAL_RSS_BYTES else 'NOT met'})")
+    for key in dict.fromkeys(v.key for v in group):
+        print(f"  {VARIANTS[key]}: {VARIANT_HELP[key]}")
+    for problem in result["problems"]:
+        print(f"PROBLEM: {problem.splitlines()[0]}")
+
+
+def main(small: bool = False, units: int | None = None) -> None:
+    """Run the import benchmark (the entry point ``run_all`` calls).
+
+    :param small: a few hundred units and one run each, as CI does.
+    :param units: fleet size, overriding the scale's default.
+    """
+    n_units = units or (SMALL_UNITS if small else FULL_UNITS)
+    run(n_units, 1 if small else 3, pg_url=os.environ.get(PG_ENV) or None)
+
+
+def _cli() -> None:
+    parser = argparse.ArgumentParser(
+        description="Time 'fleetdb import tests.csv' against the csv + driver floor.")
+    parser.add_argument("--small", action="store_true",
+                        help=f"{SMALL_UNITS} units, one run each (CI)")
+    parser.add_argument("--units", type=int, help=f"fleet size [default {FULL_UNITS:,}]")
+    parser.add_argument("--repeat", type=int, help="runs of each variant [3; 1 with --small]")
+    parser.add_argument("--seed", type=int, default=1, help="seed of the synthetic fleet")
+    parser.add_argument("--pg", metavar="URL", default=os.environ.get(PG_ENV),
+                        help=f"also measure on this PostgreSQL server [${PG_ENV}]")
+    parser.add_argument("--data-dir", type=Path, help="where the CSV files are kept")
+    parser.add_argument("--rss-limit-gb", type=float, default=10.0,
+                        help="kill a child that uses more memory than this [10]")
+    parser.add_argument("--variants", default=",".join(VARIANTS),
+                        help=f"which to run, comma-separated, from {', '.join(VARIANTS)} "
+                             "(the floor always runs)")
+    parser.add_argument("--floor", nargs=2, metavar=("TESTS_CSV", "URL"), help=argparse.SUPPRESS)
+    parser.add_argument("--ingest", nargs=2, metavar=("CSV", "URL"), help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.floor:
+        n_tests, n_readings = load_floor(Path(args.floor[0]), args.floor[1])
+        print(f"floor: wrote {n_tests} tests, {n_readings} readings")
+        return
+    if args.ingest:
+        print(ingest_file(Path(args.ingest[0]), args.ingest[1]))
+        return
+    chosen = tuple(v.strip() for v in args.variants.split(",") if v.strip())
+    unknown = set(chosen) - set(VARIANTS)
+    if unknown:
+        parser.error(f"unknown variant(s) {', '.join(sorted(unknown))}")
+    n_units = args.units or (SMALL_UNITS if args.small else FULL_UNITS)
+    repeat = args.repeat or (1 if args.small else 3)
+    run(n_units, repeat, seed=args.seed, pg_url=args.pg, data_dir=args.data_dir,
+        rss_limit_gb=args.rss_limit_gb, variants=chosen)
+
+
+if __name__ == "__main__":
+    _cli()
