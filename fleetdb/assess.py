@@ -193,7 +193,8 @@ def _series_points(fr: Frames, res: checks.CheckResult, as_of: pd.Timestamp) -> 
 
 
 def assess(fr: Frames, as_of: pd.Timestamp, *, horizon_weeks: int = HORIZON_WEEKS,
-           family_params: pd.DataFrame | None = None) -> Assessment:
+           family_params: pd.DataFrame | None = None,
+           all_findings: bool = False) -> Assessment:
     """Judge every unit in ``fr`` as of ``as_of``.
 
     :param fr: analysis frames (already cut at ``as_of`` by :func:`fleetdb.frames.load`).
@@ -201,8 +202,10 @@ def assess(fr: Frames, as_of: pd.Timestamp, *, horizon_weeks: int = HORIZON_WEEK
     :param horizon_weeks: planning horizon for ``plan``.
     :param family_params: stored family wear statistics (a one-unit refresh pools with
         them instead of recomputing the family); None: pool over the units given.
+    :param all_findings: write the sentences of every test (a unit report), not only of
+        the latest and the judged test of each unit (a fleet refresh).
     """
-    res = checks.check_tests(fr.families, fr.tests, fr.readings)
+    res = _check(fr, all_findings)
     pts = _series_points(fr, res, as_of)
     fit_in = pts[pts["in_fit"]]
     fits, steps = fleetfit.fit_fleet(fit_in, series="series", group="group", x="hours",
@@ -282,10 +285,10 @@ def _fmt_date(value: Any) -> str:
     return "unknown" if pd.isna(value) else pd.Timestamp(value).date().isoformat()
 
 
-def _reasons(fr: Frames, res: checks.CheckResult, pts: pd.DataFrame, fits: pd.DataFrame,
-             units: pd.DataFrame, as_of: pd.Timestamp, horizon_weeks: int) -> pd.DataFrame:
-    tests, summ, findings = fr.tests, res.tests, res.findings
-    parts: list[pd.DataFrame] = []
+def _judged_tests(fr: Frames, summ: pd.DataFrame) -> pd.Series:
+    """Per unit (index), its judged test: the latest trustworthy, non-voided dry test since
+    the last condition-resetting event."""
+    tests = fr.tests
     ev = fr.events[fr.events["kind"].isin(RESET_KINDS)]
     last_reset = ev.groupby("unit_id")["date"].max().reindex(tests["unit_id"]).to_numpy()
     judgeable = (summ["trustworthy"].reindex(tests.index).fillna(False).to_numpy(bool)
@@ -293,7 +296,28 @@ def _reasons(fr: Frames, res: checks.CheckResult, pts: pd.DataFrame, fits: pd.Da
                  & summ["dry_min_kpa"].reindex(tests.index).notna().to_numpy()
                  & ~(tests["tested_at"].to_numpy() < last_reset))
     judged = tests[judgeable].sort_values("tested_at").groupby("unit_id").tail(1)
-    judged_id = pd.Series(judged.index, index=judged["unit_id"])
+    return pd.Series(judged.index, index=judged["unit_id"])
+
+
+def _check(fr: Frames, all_findings: bool) -> checks.CheckResult:
+    """Judge every test; write sentences for all, or only for the tests health reads."""
+    if all_findings:
+        return checks.check_tests(fr.families, fr.tests, fr.readings)
+    quiet = checks.check_tests(fr.families, fr.tests, fr.readings,
+                               findings_for=np.zeros(len(fr.tests), dtype=bool))
+    valid = fr.tests[~fr.tests["voided"]].sort_values("tested_at")
+    wanted = np.union1d(_judged_tests(fr, quiet.tests).to_numpy(),
+                        valid.groupby("unit_id").tail(1).index.to_numpy())
+    some = checks.check_tests(fr.families, fr.tests.loc[wanted],
+                              fr.readings[fr.readings["test_id"].isin(wanted)])
+    return checks.CheckResult(tests=quiet.tests, findings=some.findings)
+
+
+def _reasons(fr: Frames, res: checks.CheckResult, pts: pd.DataFrame, fits: pd.DataFrame,
+             units: pd.DataFrame, as_of: pd.Timestamp, horizon_weeks: int) -> pd.DataFrame:
+    tests, summ, findings = fr.tests, res.tests, res.findings
+    parts: list[pd.DataFrame] = []
+    judged_id = _judged_tests(fr, summ)
 
     # 1. Limits and patterns of the judged test.
     f = findings[findings["test_id"].isin(judged_id.to_numpy())]

@@ -197,13 +197,30 @@ class _Sink:
     as kPa and psi (as kPa and inHg with the spec ``vac``).
     """
 
-    def __init__(self, test_ids: np.ndarray):
+    def __init__(self, test_ids: np.ndarray, wanted: np.ndarray | None = None):
         self.test_ids = test_ids
+        self.wanted = wanted  # per test row: write its findings (None: every test)
         self.parts: dict[str, list[np.ndarray]] = {c: [] for c in FINDING_COLUMNS}
 
     def add(self, rows: np.ndarray, code: str, severity: Any, cylinders: Any, template: str,
             numbers: dict[str, Any], text: dict[str, Any] | None = None) -> None:
+        rows = np.asarray(rows)
         m = len(rows)
+        if m and self.wanted is not None:
+            keep = np.flatnonzero(self.wanted[rows])
+            if len(keep) < m:
+                def pick(v: Any) -> Any:
+                    return np.broadcast_to(np.asarray(v, dtype=object if isinstance(v, str)
+                                                      else None), (m,))[keep]
+                rows = rows[keep]
+                numbers = {k: pick(v) for k, v in numbers.items()}
+                text = {k: pick(v) for k, v in (text or {}).items()}
+                severity = pick(severity)
+                if isinstance(cylinders, np.ndarray):
+                    cylinders = cylinders[keep]
+                elif cylinders is not None:
+                    cylinders = [cylinders[i] for i in keep]
+                m = len(rows)
         if m == 0:
             return
         arrays = {k: np.broadcast_to(np.asarray(v), (m,)) for k, v in numbers.items()}
@@ -337,13 +354,17 @@ def _family_params(tests: pd.DataFrame, families: pd.DataFrame) -> dict[str, np.
 
 
 def check_tests(families: pd.DataFrame, tests: pd.DataFrame,
-                readings: pd.DataFrame) -> CheckResult:
+                readings: pd.DataFrame, *,
+                findings_for: np.ndarray | None = None) -> CheckResult:
     """Judge every test on its own: validity, then patterns, all vectorised.
 
     :param families: engine families indexed by family_id (DEVELOPERS.md "Analysis frames");
         an optional ``expected_kpa`` column gives the expected healthy level.
     :param tests: tests indexed by test_id.
     :param readings: readings with test_id, kind, cylinder, value.
+    :param findings_for: boolean per test (in ``tests`` order): write findings only for
+        these (a fleet refresh needs sentences for the latest tests only); the per-test
+        summary always covers every test.
     :returns: per-test summary (index test_id) and findings, one row per finding.
     """
     fp = _family_params(tests, families)
@@ -360,7 +381,8 @@ def check_tests(families: pd.DataFrame, tests: pd.DataFrame,
           ("compression", "wet", "leakdown", "relative", "vacuum_cranking", "vacuum_idle")}
     dry = _wide(rows[of["compression"]], cyl[of["compression"]], val[of["compression"]], n, k)
     wet = _wide(rows[of["wet"]], cyl[of["wet"]], val[of["wet"]], n, k)
-    sink = _Sink(tests.index.to_numpy())
+    sink = _Sink(tests.index.to_numpy(),
+                 None if findings_for is None else np.asarray(findings_for, dtype=bool))
 
     validity = _validity(tests, fp, rows, raw, of, sink)
     summary = _compression(dry, wet, fp, validity, sink)

@@ -162,13 +162,17 @@ def refresh_fleet(engine: Engine, as_of: dt.date | None = None) -> dict[str, Any
             "counts": {lvl: int(counts.get(lvl, 0)) for lvl in LEVELS}}
 
 
-def assess_units(engine: Engine, unit_ids: list[int], as_of: dt.date | None = None) -> Assessment:
-    """Assess some units, pooling with their families' stored statistics when there are any."""
+def assess_units(engine: Engine, unit_ids: list[int], as_of: dt.date | None = None, *,
+                 all_findings: bool = False) -> Assessment:
+    """Assess some units, pooling with their families' stored statistics when there are any.
+
+    :param all_findings: sentences for every test, not only the latest and judged ones.
+    """
     day, moment = _as_of(as_of)
     with engine.connect() as conn:
         params = _stored_family_params(conn, week_start(day))
     return assess_mod.assess(frames.load(engine, unit_ids, as_of=moment), moment,
-                             family_params=params)
+                             family_params=params, all_findings=all_findings)
 
 
 def refresh_units(engine: Engine, unit_ids: list[int], as_of: dt.date | None = None) -> None:
@@ -328,7 +332,7 @@ def unit_report(engine: Engine, fleet_no: str, as_of: dt.date | None = None) -> 
     The shape is documented in DEVELOPERS.md ("The health API") and in the README.
     """
     uid = unit_id_for(engine, fleet_no)
-    result = assess_units(engine, [uid], as_of)
+    result = assess_units(engine, [uid], as_of, all_findings=True)
     fr = frames.load(engine, [uid], as_of=result.as_of)
     u = result.units.loc[uid]
     fam = fr.families.loc[u["family_id"]]
@@ -432,7 +436,7 @@ def test_verdict(engine: Engine, test_id: int) -> dict[str, Any]:
             "SELECT level FROM health_snapshot WHERE unit_id = :u AND week_start <= :w "
             "ORDER BY week_start DESC LIMIT 1"), {"u": row[0], "w": week}).scalar()
     refresh_units(engine, [int(row[0])])
-    result = assess_units(engine, [int(row[0])])
+    result = assess_units(engine, [int(row[0])], all_findings=True)
     summ = result.checks.tests.loc[test_id]
     f = result.checks.findings
     f = f[f["test_id"] == test_id]
