@@ -19,6 +19,7 @@ from __future__ import annotations
 
 from collections.abc import Iterable
 from typing import Any
+from urllib.parse import urlencode
 
 from dash import html
 
@@ -193,3 +194,164 @@ def safety_panel(panel_id: str) -> html.Aside:
         html.P("A verdict or a projected date is a planning aid, never a safety "
                "certification.", className="hint"),
     ], id=panel_id, className="panel panel-safety", **{"aria-label": "Safety cautions"})
+
+
+# -- Health board -----------------------------------------------------------------------------
+
+#: How the board names a change since last week.
+CHANGE_WORDS = {"new": "new this week", "same": "same", "worse": "worse", "better": "better"}
+
+
+def level_text(level: str | None) -> str:
+    """A level as plain text with its marker (``■ act``), for table cells and options."""
+    return f"{LEVEL_MARKERS[level]} {level}" if level in LEVEL_MARKERS else "– none"
+
+
+def level_options() -> list[dict[str, str]]:
+    """The levels as dropdown options, worst first, each with its marker."""
+    return [{"label": level_text(level), "value": level} for level in LEVELS]
+
+
+def level_counts(counts: dict[str, int]) -> html.Ul:
+    """One badge and number per level, worst first (``■ act 3``).
+
+    :param counts: units per level (``board()["counts"]``).
+    """
+    return html.Ul([html.Li([level_badge(level), html.Span(f"{counts.get(level, 0):,}",
+                                                           className="count-number")],
+                            className="count", title=f"{counts.get(level, 0)} units at "
+                                                     f"level {level}")
+                    for level in LEVELS], className="level-counts")
+
+
+def site_level_table(counts_by_site: dict[str, dict[str, int]]) -> html.Table:
+    """Sites down, levels across, units in each cell; a total per site.
+
+    :param counts_by_site: ``board()["counts_by_site"]``.
+    """
+    head = html.Tr([html.Th("Site", scope="col"),
+                    *[html.Th(level_badge(level), scope="col") for level in LEVELS],
+                    html.Th("units", scope="col")])
+    body = [html.Tr([html.Th(site, scope="row"),
+                     *[html.Td(f"{levels.get(level, 0):,}" if levels.get(level) else "·",
+                               className="num") for level in LEVELS],
+                     html.Td(f"{sum(levels.values()):,}", className="num")])
+            for site, levels in sorted(counts_by_site.items())]
+    return html.Table([html.Thead(head), html.Tbody(body)], className="site-levels")
+
+
+def unit_href(fleet_no: str, as_of: str | None = None) -> str:
+    """The unit page's address for a fleet number (and the day shown, when given)."""
+    query = {"fleet_no": fleet_no, **({"as_of": as_of} if as_of else {})}
+    return "/unit?" + urlencode(query)
+
+
+def _change_text(row: dict[str, Any]) -> str:
+    change = row.get("change")
+    if change is None:
+        return "– no snapshot last week"
+    words = CHANGE_WORDS.get(change, change)
+    if change in ("worse", "better"):
+        return f"{words}, was {level_text(row.get('previous_level'))}"
+    return words
+
+
+def _markdown_text(value: str) -> str:
+    """Text safe inside a markdown cell: markdown's own characters escaped."""
+    return "".join("\\" + ch if ch in "\\`*_{}[]()#+-.!<>|" else ch for ch in value)
+
+
+def board_table_rows(rows: list[dict[str, Any]], as_of: str | None) -> list[dict[str, Any]]:
+    """Board rows (``fleetdb.health.board``) as the cells of the board's table.
+
+    :param rows: one page of board rows.
+    :param as_of: the day shown, carried into each unit link.
+    """
+    out = []
+    for row in rows:
+        early, best = row.get("projected_date_early"), row.get("projected_date")
+        hours = row.get("hours_to_limit")
+        out.append({
+            "id": row["fleet_no"],
+            "fleet_no": f"[{_markdown_text(row['fleet_no'])}]"
+                        f"({unit_href(row['fleet_no'], as_of)})",
+            "site": row["site"], "engine_family": row["engine_family"],
+            "level": level_text(row["level"]),
+            "reason": row.get("main_text") or "Nothing found: every check passes.",
+            "limit_date": "–" if early is None else (
+                early[:10] + ("" if best is None or best[:10] == early[:10]
+                              else f" (best estimate {best[:10]})")),
+            "hours_to_limit": "–" if hours is None else f"{hours:,.0f} h",
+            "last_test": (row.get("last_tested_at") or "never")[:10],
+            "change": _change_text(row),
+        })
+    return out
+
+
+# -- Unit history ---------------------------------------------------------------------------
+
+def unit_header(report: dict[str, Any], unit: str) -> html.Section:
+    """Who the unit is, its level, each reason in words and its projected crossing.
+
+    :param report: ``fleetdb.health.unit_report``.
+    :param unit: the pressure unit for the minimum.
+    """
+    u = report["unit"]
+    last = ("never tested" if not u.get("last_tested_at") else
+            f"last test {u['last_tested_at'][:10]} at {u.get('last_hours') or 0:,.0f} h")
+    ratio = "" if u.get("min_ratio") is None else f", minimum ratio {u['min_ratio']:.2f}"
+    reasons = [html.Li([level_badge(r["level"]), " ", r["text"]]) for r in report["reasons"]]
+    early, best = report.get("projected_date_early"), report.get("projected_date")
+    projection = ("No limit crossing projected from the current wear lines." if early is None
+                  else f"Projected to reach a limit around {early[:10]} (conservative, 95 %)"
+                       f"; best estimate {(best or early)[:10]}, at about "
+                       f"{report.get('projected_hours') or 0:,.0f} h. A planning aid, not a "
+                       "certification.")
+    return html.Section([
+        html.H2([f"{u['fleet_no']} ", level_badge(report["level"])], className="unit-title"),
+        html.P(f"{u['engine_family']} · {u['fuel']} · {u['cylinders']} cylinders "
+               f"({u['banks']}) · {u['site']} ({u['site_elevation_m']:,.0f} m) · family "
+               f"minimum {pressure_text(u['min_compression_kpa'], unit)}{ratio} · {last} · "
+               f"as of {report['as_of']}",
+               className="hint"),
+        html.H3("Why this level"),
+        html.Ul(reasons or [html.Li([level_badge("sound"), " Nothing found: every check "
+                                     "passes and no limit is near."])], className="findings"),
+        html.P(projection, className="projection"),
+    ], className="panel panel-unit")
+
+
+def _number(value: Any, digits: int = 0, suffix: str = "") -> str:
+    return "–" if value is None else f"{value:,.{digits}f}{suffix}"
+
+
+def tests_table(report: dict[str, Any], unit: str) -> html.Table:
+    """Every test of the unit, newest first, with its conditions, spread and findings.
+
+    :param report: ``fleetdb.health.unit_report``.
+    :param unit: the pressure unit for lowest and highest.
+    """
+    head = html.Tr([html.Th(h, scope="col") for h in (
+        "Test", "Date", "Hours", "Standing", "Battery", "Cranking", "Engine",
+        "Lowest (sea level)", "Highest (sea level)", "Ratio", "Findings")])
+    body = []
+    for t in reversed(report["tests"]):
+        standing = ("✗ voided: " + (t.get("void_reason") or "no reason given")
+                    if t["voided"] else "✓ trustworthy" if t["trustworthy"]
+                    else "◌ not trustworthy")
+        findings = [html.Li([severity_tag(f["severity"]), " ", f["text"]])
+                    for f in t["findings"]]
+        body.append(html.Tr([
+            html.Td(str(t["test_id"])), html.Td(t["tested_at"][:16]),
+            html.Td(_number(t["hours"]), className="num"),
+            html.Td(standing, className="standing-voided" if t["voided"] else
+                    ("" if t["trustworthy"] else "standing-untrusted")),
+            html.Td(_number(t.get("battery_v"), 1, " V"), className="num"),
+            html.Td(_number(t.get("crank_rpm"), 0, " rpm"), className="num"),
+            html.Td(_number(t.get("engine_temp_c"), 0, " °C"), className="num"),
+            html.Td(pressure_text(t.get("lowest_kpa"), unit), className="num"),
+            html.Td(pressure_text(t.get("highest_kpa"), unit), className="num"),
+            html.Td(_number(t.get("ratio"), 2), className="num"),
+            html.Td(html.Ul(findings, className="findings") if findings else "none"),
+        ], className="test-voided" if t["voided"] else None))
+    return html.Table([html.Thead(head), html.Tbody(body)], className="tests-table")

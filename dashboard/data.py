@@ -2,23 +2,30 @@
 
 The dashboard computes no analysis of its own. Every function takes the database URL
 (kept in ``app.server.config``, see :func:`current_url`) and calls fleetdb: ``views`` to
-read, ``logbook`` to check and write a test, ``health`` for levels and verdicts.
+read, ``logbook`` to check and write a test, ``health`` for levels, verdicts, the board
+and the unit report. The Fleet wear page's fleet-level frames (:func:`fleet_wear`) are
+gathered here from ``frames.load`` and ``assess.assess`` until fleetdb offers them.
 """
 
 from __future__ import annotations
 
+import csv
+import datetime as dt
 import importlib
+import io
 from dataclasses import dataclass, field
 from functools import lru_cache
 from types import ModuleType
 from typing import Any
 
+import numpy as np
 import pandas as pd
 from flask import current_app
+from sqlalchemy import text
 from sqlalchemy.engine import Engine
 from sqlalchemy.exc import IntegrityError
 
-from fleetdb import db, logbook, views
+from fleetdb import assess, db, frames, health, logbook, views
 from fleetdb.errors import InvalidInput, Problem
 from fleetdb.validate import parse_banks
 
@@ -81,16 +88,18 @@ def health_module() -> ModuleType | None:
 # -- units ------------------------------------------------------------------------------
 
 def unit_options(url: str, search: str | None, selected: str | None) -> list[dict[str, str]]:
-    """Units whose fleet number contains ``search``, for the type-ahead picker.
+    """Units whose fleet number contains ``search``, for the type-ahead pickers.
+
+    Asks the store for at most :data:`UNIT_OPTION_LIMIT` matches (never the whole fleet).
 
     :param search: what the user typed so far (None or blank: the first units).
     :param selected: the unit already picked; always kept among the options.
     """
-    needle = (search or "").strip().lower()
-    rows = views.fleet_listing(engine_for(url))
-    hits = [r for r in rows if needle in r["fleet_no"].lower()][:UNIT_OPTION_LIMIT]
+    engine = engine_for(url)
+    hits = views.find_units(engine, search, limit=UNIT_OPTION_LIMIT)
     if selected and all(r["fleet_no"] != selected for r in hits):
-        hits += [r for r in rows if r["fleet_no"] == selected]
+        hits += [r for r in views.find_units(engine, selected, limit=UNIT_OPTION_LIMIT)
+                 if r["fleet_no"] == selected]
     return [{"label": f"{r['fleet_no']} · {r['engine_family']} · {r['site']}",
              "value": r["fleet_no"]} for r in hits]
 
@@ -269,3 +278,196 @@ def dry_compression_of(url: str, fleet_no: str,
         return None
     frame = pd.DataFrame(rows, columns=["cylinder", "value_kpa"])
     return frame, report["unit"]["min_compression_kpa"]
+
+
+# -- shared: days, names, the store's version ---------------------------------------------
+
+def parse_day(value: str | None) -> dt.date | None:
+    """An ISO day (``2026-12-01``, or the start of a longer ISO text); None if blank or bad.
+
+    :param value: what a date picker or a query string holds.
+    """
+    try:
+        return dt.date.fromisoformat(str(value).strip()[:10]) if value else None
+    except ValueError:
+        return None
+
+
+def sites_and_families(url: str) -> tuple[list[str], list[str]]:
+    """Every site name and every engine family name, sorted, for the filters.
+
+    (A listing the lead may move into fleetdb.views; see the dashboard's notes.)
+    """
+    with engine_for(url).connect() as conn:
+        sites = conn.execute(text("SELECT name FROM site ORDER BY name")).scalars().all()
+        families = conn.execute(text("SELECT name FROM engine_family ORDER BY name")
+                                ).scalars().all()
+    return list(sites), list(families)
+
+
+def store_version(url: str) -> tuple[int, int, int]:
+    """What changes when tests, voids or service events are written: the cache key part.
+
+    Nothing is deleted from the store, so the highest ids and the void count only grow.
+    """
+    with engine_for(url).connect() as conn:
+        row = conn.execute(text(
+            "SELECT (SELECT COALESCE(MAX(id), 0) FROM test), "
+            "(SELECT COUNT(*) FROM test_void), (SELECT COALESCE(MAX(id), 0) FROM service_event)"
+        )).one()
+    return int(row[0]), int(row[1]), int(row[2])
+
+
+# -- Health board ---------------------------------------------------------------------------
+
+#: Rows per page of the board.
+BOARD_PAGE_SIZE = 25
+
+
+@dataclass(frozen=True)
+class BoardFilters:
+    """What the board is narrowed to; None or blank means no narrowing."""
+
+    as_of: dt.date | None = None
+    site: str | None = None
+    family: str | None = None
+    level: str | None = None
+    search: str | None = None
+
+
+def board(url: str, filters: BoardFilters, *, offset: int = 0,
+          limit: int | None = BOARD_PAGE_SIZE) -> dict[str, Any]:
+    """One page of the week's board (``fleetdb.health.board``), read from the snapshot.
+
+    :param filters: site, family, level, fleet-number search and the day.
+    :param offset: rows to skip.
+    :param limit: rows to return (None: every row of the filtered board).
+    """
+    return health.board(engine_for(url), filters.as_of, site=filters.site or None,
+                        family=filters.family or None, level=filters.level or None,
+                        search=(filters.search or "").strip() or None, offset=offset,
+                        limit=limit)
+
+
+#: The columns of the board's CSV export: (key in a board row, header).
+BOARD_CSV_COLUMNS: tuple[tuple[str, str], ...] = (
+    ("fleet_no", "fleet_no"), ("site", "site"), ("engine_family", "engine_family"),
+    ("level", "level"), ("main_code", "main_reason_code"), ("main_text", "main_reason"),
+    ("projected_date_early", "limit_date_conservative"), ("projected_date", "limit_date_best"),
+    ("projected_hours_early", "limit_hours_conservative"), ("projected_hours", "limit_hours_best"),
+    ("hours_to_limit", "hours_to_limit"), ("last_tested_at", "last_tested_at"),
+    ("last_hours", "last_hours"), ("previous_level", "previous_level"), ("change", "change"),
+)
+#: First characters that make a spreadsheet read a cell as a formula (OWASP, "CSV Injection").
+FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+
+
+def csv_safe(value: Any) -> Any:
+    """A cell for a CSV a spreadsheet will open: text that could start a formula gets ``'``.
+
+    Numbers stay numbers (a negative number is not a formula); only text is guarded.
+
+    :param value: the cell's value.
+    """
+    if isinstance(value, str) and value.startswith(FORMULA_STARTS):
+        return "'" + value
+    return "" if value is None else value
+
+
+def board_csv(url: str, filters: BoardFilters) -> str:
+    """The whole filtered board as CSV text, one row per unit, worst first.
+
+    :param filters: the filters the board shows now (every page is exported).
+    """
+    rows = board(url, filters, limit=None)["rows"]
+    out = io.StringIO()
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow([header for _, header in BOARD_CSV_COLUMNS])
+    for row in rows:
+        writer.writerow([csv_safe(row.get(key)) for key, _ in BOARD_CSV_COLUMNS])
+    return out.getvalue()
+
+
+# -- Unit history ---------------------------------------------------------------------------
+
+@lru_cache(maxsize=32)
+def _unit_report(url: str, fleet_no: str, as_of: dt.date | None,
+                 version: tuple[int, int, int]) -> dict[str, Any]:
+    return health.unit_report(engine_for(url), fleet_no, as_of)
+
+
+def unit_report(url: str, fleet_no: str, as_of: dt.date | None) -> dict[str, Any]:
+    """``fleetdb.health.unit_report``, shared by the unit page's callbacks.
+
+    Cached by (url, unit, day, :func:`store_version`): a new test, void or event is seen
+    at once. Raises :class:`fleetdb.errors.UnitNotFound` for an unknown fleet number.
+    """
+    return _unit_report(url, fleet_no, as_of, store_version(url))
+
+
+# -- Fleet wear -----------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class FleetWear:
+    """The fleet-level frames of the Fleet wear page (kPa inside; wear as a loss, >= 0 = wear).
+
+    ``wear``: one row per unit with a fitted current cylinder series: ``fleet_no, family,
+    site, cylinder`` (its fastest-wearing cylinder), ``wear_kpa_per_1000h``, ``method``,
+    ``faster_than_family``.
+    ``families``: index family name: ``minimum_kpa``, ``family_wear_kpa_per_1000h``.
+    ``tests``: one row per trustworthy, non-voided dry compression test: ``fleet_no, family,
+    site, elevation_m, tested_at, hours, lowest_kpa, lowest_sl_kpa, mean_kpa, mean_sl_kpa``.
+    ``latest``: the latest row of ``tests`` per unit.
+    """
+
+    wear: pd.DataFrame
+    families: pd.DataFrame
+    tests: pd.DataFrame
+    latest: pd.DataFrame
+
+
+def fleet_wear(url: str, as_of: dt.date | None) -> FleetWear:
+    """The fleet's current wear rates and compression history, as of a day.
+
+    Computed from ``fleetdb.frames.load`` and ``fleetdb.assess.assess`` (the same fits the
+    board's snapshot comes from), cached by (url, day, :func:`store_version`). A fleet-level
+    function the lead may move into fleetdb.
+
+    :param as_of: the day (None: today).
+    """
+    return _fleet_wear(url, as_of or dt.date.today(), store_version(url))
+
+
+@lru_cache(maxsize=2)
+def _fleet_wear(url: str, day: dt.date, version: tuple[int, int, int]) -> FleetWear:
+    moment = pd.Timestamp(day) + pd.Timedelta(hours=23, minutes=59, seconds=59)
+    fr = frames.load(engine_for(url), as_of=moment)
+    result = assess.assess(fr, moment)
+    units = fr.units[["fleet_no", "family", "site", "elevation_m"]]
+    fits = result.fits
+    own = fits[fits["current"] & (fits["cylinder"] != assess.SPREAD_CYLINDER)
+               & fits["slope"].notna() & (fits["slope_source"] != "pooled_short")]
+    fastest = own.loc[own.groupby("unit_id")["slope"].idxmin()]
+    wear = units.loc[fastest["unit_id"].to_numpy(), ["fleet_no", "family", "site"]].assign(
+        cylinder=fastest["cylinder"].to_numpy(int),
+        wear_kpa_per_1000h=-1000.0 * fastest["slope"].to_numpy(float),
+        method=fastest["slope_source"].to_numpy(),
+        faster_than_family=fastest["faster_than_family"].to_numpy(bool)).reset_index(drop=True)
+    names = fr.families["name"]
+    params = result.family_params
+    family_mu = params["family_mu"].reindex(names.index) if len(params) else np.nan
+    families = pd.DataFrame({"minimum_kpa": fr.families["min_compression_kpa"].to_numpy(float),
+                             "family_wear_kpa_per_1000h": -1000.0 * np.asarray(family_mu,
+                                                                                 float)},
+                            index=pd.Index(names.to_numpy(), name="family"))
+    pts = result.points
+    dry = pts[(pts["cylinder"] != assess.SPREAD_CYLINDER) & pts["in_fit"]]
+    per_test = dry.groupby("test_id").agg(
+        unit_id=("unit_id", "first"), tested_at=("tested_at", "first"), hours=("hours", "first"),
+        lowest_kpa=("value_kpa", "min"), lowest_sl_kpa=("value_sl", "min"),
+        mean_kpa=("value_kpa", "mean"), mean_sl_kpa=("value_sl", "mean"))
+    tests = units.reindex(per_test["unit_id"].to_numpy()).reset_index(drop=True).join(
+        per_test.reset_index(drop=True)).drop(columns="unit_id").sort_values(
+        ["fleet_no", "tested_at"], ignore_index=True)
+    latest = tests.groupby("fleet_no", sort=False).tail(1).reset_index(drop=True)
+    return FleetWear(wear=wear, families=families, tests=tests, latest=latest)

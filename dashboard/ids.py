@@ -39,6 +39,42 @@ LOG_VERDICT_PANEL = "log-verdict-panel"
 LOG_VERDICT_GRAPH = "log-verdict-graph"
 LOG_SAFETY = "log-safety"
 
+# -- Health board (/) ----------------------------------------------------------------
+BOARD_AS_OF = "board-as-of"
+BOARD_WEEK = "board-week"
+BOARD_COUNTS = "board-counts"
+BOARD_SITES = "board-sites"
+BOARD_SITE = "board-site"
+BOARD_FAMILY = "board-family"
+BOARD_LEVEL = "board-level"
+BOARD_SEARCH = "board-search"
+BOARD_TABLE = "board-table"
+BOARD_SHOWING = "board-showing"
+BOARD_EXPORT = "board-export"
+BOARD_DOWNLOAD = "board-download"
+BOARD_GO = "board-go"
+
+# -- Unit history (/unit) ------------------------------------------------------------
+UNIT_PICK = "unit-pick"
+UNIT_AS_OF = "unit-as-of"
+UNIT_PRESSURE_UNIT = "unit-pressure-unit"
+UNIT_BASIS = "unit-basis"
+UNIT_SUMMARY = "unit-summary"
+UNIT_COMPRESSION = "unit-compression"
+UNIT_SPREAD = "unit-spread"
+UNIT_VACUUM = "unit-vacuum"
+UNIT_TESTS = "unit-tests"
+
+# -- Fleet wear (/fleet) -------------------------------------------------------------
+FLEET_AS_OF = "fleet-as-of"
+FLEET_FAMILY = "fleet-family"
+FLEET_HIGHLIGHT = "fleet-highlight"
+FLEET_PRESSURE_UNIT = "fleet-pressure-unit"
+FLEET_WEAR = "fleet-wear"
+FLEET_HOURS = "fleet-hours"
+FLEET_SITES = "fleet-sites"
+FLEET_NOTE = "fleet-note"
+
 _LOG_CYLINDER_TYPE = "log-cylinder"
 
 

@@ -40,7 +40,8 @@ def client(store_url: str) -> Any:
 
 def _callback(client: Any, output_id: str) -> dict[str, Any]:
     deps = client.get("/_dash-dependencies").get_json()
-    matches = [d for d in deps if f"{output_id}." in d["output"]]
+    matches = [d for d in deps if output_id in
+               [part.rsplit(".", 1)[0] for part in d["output"].strip(".").split("...")]]
     assert len(matches) == 1, [d["output"] for d in deps]
     return matches[0]
 
@@ -75,7 +76,8 @@ def _cylinder_rows(block: list[Any]) -> list[list[int]]:
         c["props"].get("id"))] for row in block]
 
 
-@pytest.mark.parametrize("path", ["/", "/log"])
+@pytest.mark.parametrize("path", ["/", "/log", "/unit", "/unit?fleet_no=T-101", "/fleet",
+                                  "/?as_of=2024-06-01&level=act"])
 def test_pages_are_served(client: Any, path: str) -> None:
     reply = client.get(path)
     assert reply.status_code == 200
@@ -304,3 +306,266 @@ def test_level_badges_carry_word_and_marker() -> None:
     assert texts == {"act": "■ act", "plan": "▲ plan", "retest": "◆ retest",
                      "watch": "● watch", "sound": "○ sound"}
     assert len(set(components.LEVEL_MARKERS.values())) == len(components.LEVELS)
+
+
+# -- Health board, Unit history, Fleet wear ------------------------------------------------------
+#
+# The demo fleet (demo_fleet/README.md) as of 2026-12-01: 54 units, more than two pages.
+# What the pages must show is fleetdb.health's own answer (board(), unit_report()); the
+# dashboard may not reorder, re-level or drop anything.
+
+DEMO_DAY = "2026-12-01"
+
+
+@pytest.fixture(scope="module")
+def demo_url(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
+    """A SQLite store with the demo fleet built as of DEMO_DAY and its week refreshed."""
+    import datetime as dt
+
+    from fleetdb import demo, health
+
+    url = f"sqlite:///{tmp_path_factory.mktemp('demo') / 'demo.sqlite'}"
+    migrate.upgrade(url)
+    engine = db.get_engine(url)
+    demo.build_into(engine, as_of=dt.date.fromisoformat(DEMO_DAY))
+    health.refresh_fleet(engine, dt.date.fromisoformat(DEMO_DAY))
+    yield url
+    engine.dispose()
+    data.unit_engine.cache_clear()
+
+
+@pytest.fixture
+def demo_client(demo_url: str) -> Any:
+    return create_app(demo_url).server.test_client()
+
+
+def _call(client: Any, output_id: str, values: dict[str, Any], trigger: str) -> dict[str, Any]:
+    """POST one callback with ``values`` by ``"id.property"``; ``trigger`` is what changed."""
+    dep = _callback(client, output_id)
+    outputs = [{"id": part.split(".")[0], "property": part.split(".")[1]}
+               for part in dep["output"].strip(".").split("...")]
+
+    def deps(items: list[dict[str, Any]]) -> list[dict[str, Any]]:
+        return [{**item, "value": values.get(f"{item['id']}.{item['property']}")}
+                for item in items]
+    body = {"output": dep["output"], "outputs": outputs if len(outputs) > 1 else outputs[0],
+            "inputs": deps(dep["inputs"]), "state": deps(dep["state"]),
+            "changedPropIds": [trigger]}
+    reply = client.post("/_dash-update-component", json=body)
+    assert reply.status_code == 200, reply.data[:500]
+    return reply.get_json()["response"]
+
+
+def _board_values(**filters: Any) -> dict[str, Any]:
+    values = {f"{ids.BOARD_AS_OF}.date": DEMO_DAY, f"{ids.BOARD_TABLE}.page_current": 0}
+    for name, value in filters.items():
+        component = {"site": ids.BOARD_SITE, "family": ids.BOARD_FAMILY,
+                     "level": ids.BOARD_LEVEL, "search": ids.BOARD_SEARCH}.get(name)
+        values[f"{component}.value" if component else f"{ids.BOARD_TABLE}.{name}"] = value
+    return values
+
+
+def _health_board(url: str, **kwargs: Any) -> dict[str, Any]:
+    import datetime as dt
+
+    from fleetdb import health
+
+    return health.board(db.get_engine(url), dt.date.fromisoformat(DEMO_DAY), **kwargs)
+
+
+def test_board_first_page_is_fleetdb_board_page_one(demo_client: Any, demo_url: str) -> None:
+    response = _call(demo_client, ids.BOARD_TABLE, _board_values(),
+                     f"{ids.BOARD_AS_OF}.date")
+    expected = _health_board(demo_url, limit=data.BOARD_PAGE_SIZE)
+    table = response[ids.BOARD_TABLE]
+    assert [r["id"] for r in table["data"]] == [r["fleet_no"] for r in expected["rows"]]
+    assert [r["level"] for r in table["data"]] == [components.level_text(r["level"])
+                                                   for r in expected["rows"]]
+    assert table["page_count"] == -(-expected["total"] // data.BOARD_PAGE_SIZE) == 3
+    counts = str(response[ids.BOARD_COUNTS]["children"])
+    for level, n in expected["counts"].items():
+        assert components.LEVEL_MARKERS[level] in counts and f"'{n:,}'" in counts
+    assert f"Showing 1–25 of {expected['total']} units" == \
+        response[ids.BOARD_SHOWING]["children"]
+    first = table["data"][0]
+    assert first["fleet_no"].endswith(f"(/unit?fleet_no={first['id']}&as_of={DEMO_DAY})")
+
+
+def test_board_pager_asks_for_the_next_rows_only(demo_client: Any, demo_url: str) -> None:
+    response = _call(demo_client, ids.BOARD_TABLE, _board_values(page_current=2),
+                     f"{ids.BOARD_TABLE}.page_current")
+    expected = _health_board(demo_url, offset=50, limit=data.BOARD_PAGE_SIZE)
+    assert [r["id"] for r in response[ids.BOARD_TABLE]["data"]] == \
+        [r["fleet_no"] for r in expected["rows"]]
+    assert response[ids.BOARD_TABLE]["page_current"] == 2
+    assert response[ids.BOARD_SHOWING]["children"] == "Showing 51–54 of 54 units"
+
+
+def test_a_new_filter_starts_at_page_one(demo_client: Any, demo_url: str) -> None:
+    response = _call(demo_client, ids.BOARD_TABLE, _board_values(level="act", page_current=2),
+                     f"{ids.BOARD_LEVEL}.value")
+    expected = _health_board(demo_url, level="act")
+    assert response[ids.BOARD_TABLE]["page_current"] == 0
+    assert [r["id"] for r in response[ids.BOARD_TABLE]["data"]] == \
+        [r["fleet_no"] for r in expected["rows"]]
+    assert {r["level"] for r in response[ids.BOARD_TABLE]["data"]} == {"■ act"}
+    both = _call(demo_client, ids.BOARD_TABLE, _board_values(site="Kettlerock Yard",
+                                                             search="lt-9"),
+                 f"{ids.BOARD_SEARCH}.value")
+    assert [r["id"] for r in both[ids.BOARD_TABLE]["data"]] == [
+        r["fleet_no"] for r in _health_board(demo_url, site="Kettlerock Yard",
+                                             search="lt-9")["rows"]]
+    assert all(r["site"] == "Kettlerock Yard" and "LT-9" in r["id"]
+               for r in both[ids.BOARD_TABLE]["data"])
+
+
+def test_clicking_a_row_opens_its_unit(demo_client: Any) -> None:
+    cell = {"row": 2, "column": 1, "column_id": "site", "row_id": "LT-902"}
+    response = _call(demo_client, ids.BOARD_GO, {f"{ids.BOARD_TABLE}.active_cell": cell,
+                                                 f"{ids.BOARD_AS_OF}.date": DEMO_DAY},
+                     f"{ids.BOARD_TABLE}.active_cell")
+    assert response[ids.BOARD_GO]["href"] == f"/unit?fleet_no=LT-902&as_of={DEMO_DAY}"
+
+
+# OWASP "CSV Injection": cells beginning with = + - @ tab or carriage return are read as
+# formulas by spreadsheets; prefixing a single quote makes them text.
+@pytest.mark.parametrize(("value", "written"), [
+    ("=HYPERLINK(\"http://x\",\"y\")", "'=HYPERLINK(\"http://x\",\"y\")"),
+    ("+1+2", "'+1+2"), ("-2+3", "'-2+3"), ("@SUM(A1)", "'@SUM(A1)"),
+    ("\tcmd", "'\tcmd"), ("\rcmd", "'\rcmd"),
+    ("LT-902", "LT-902"), (-120.0, -120.0), (None, ""),
+])
+def test_csv_cells_cannot_start_a_formula(value: Any, written: Any) -> None:
+    assert data.csv_safe(value) == written
+
+
+def test_export_writes_the_filtered_board_with_formulas_neutralised(
+        store_url: str, tmp_path: Path) -> None:
+    import csv
+    import io
+
+    hostile = tmp_path / "hostile.csv"
+    hostile.write_text("fleet_no,site,engine_family\n=cmd|' /C calc'!A0,Low Yard,TEST-L4\n"
+                       "@T-999,Low Yard,TEST-L4\n", encoding="utf-8")
+    ingest.import_files(db.get_engine(store_url), [hostile], by="test")
+    client = create_app(store_url).server.test_client()
+    values = {f"{ids.BOARD_EXPORT}.n_clicks": 1, f"{ids.BOARD_AS_OF}.date": "2024-06-01",
+              f"{ids.BOARD_SITE}.value": "Low Yard"}
+    download = _call(client, ids.BOARD_DOWNLOAD, values,
+                     f"{ids.BOARD_EXPORT}.n_clicks")[ids.BOARD_DOWNLOAD]["data"]
+    assert download["filename"] == "health-board-2024-06-01.csv"
+    rows = list(csv.DictReader(io.StringIO(download["content"])))
+    assert {r["fleet_no"] for r in rows} == {"T-101", "T-102", "T-301", "'=cmd|' /C calc'!A0",
+                                             "'@T-999"}
+    assert all(r["site"] == "Low Yard" for r in rows)
+    assert list(rows[0]) == [header for _, header in data.BOARD_CSV_COLUMNS]
+
+
+def test_unit_page_shows_fleetdb_report(demo_client: Any, demo_url: str) -> None:
+    import datetime as dt
+
+    from fleetdb import health
+
+    report = health.unit_report(db.get_engine(demo_url), "LT-902",
+                                dt.date.fromisoformat(DEMO_DAY))
+    values = {f"{ids.UNIT_PICK}.value": "LT-902", f"{ids.UNIT_AS_OF}.date": DEMO_DAY,
+              f"{ids.UNIT_PRESSURE_UNIT}.value": "kPa", f"{ids.UNIT_BASIS}.value": "sea_level"}
+    described = _call(demo_client, ids.UNIT_SUMMARY, values, f"{ids.UNIT_PICK}.value")
+    summary = str(described[ids.UNIT_SUMMARY]["children"])
+    assert f"level: {report['level']}" in summary
+    assert all(reason["text"] in summary for reason in report["reasons"])
+    tests_shown = str(described[ids.UNIT_TESTS]["children"])
+    assert all(f"'{t['test_id']}'" in tests_shown for t in report["tests"])
+    figure = _call(demo_client, ids.UNIT_COMPRESSION, values,
+                   f"{ids.UNIT_PICK}.value")[ids.UNIT_COMPRESSION]["figure"]
+    assert figure["layout"]["yaxis"]["title"]["text"] == "compression (kPa, sea-level equivalent)"
+    cylinders = {t["name"] for t in figure["data"] if t.get("name", "").startswith("Cyl ")}
+    assert cylinders == {f"Cyl {c}" for c in range(1, report["unit"]["cylinders"] + 1)}
+
+
+def test_unknown_unit_is_an_alert_not_an_error(demo_client: Any) -> None:
+    values = {f"{ids.UNIT_PICK}.value": "NO-SUCH", f"{ids.UNIT_AS_OF}.date": DEMO_DAY,
+              f"{ids.UNIT_PRESSURE_UNIT}.value": "psi"}
+    shown = str(_call(demo_client, ids.UNIT_SUMMARY, values,
+                      f"{ids.UNIT_PICK}.value")[ids.UNIT_SUMMARY]["children"])
+    assert "Unit not found" in shown and "no unit with fleet number 'NO-SUCH'" in shown
+
+
+def test_fleet_page_follows_the_highlighted_unit(demo_client: Any) -> None:
+    chosen = _call(demo_client, ids.FLEET_FAMILY, {f"{ids.FLEET_AS_OF}.date": DEMO_DAY,
+                                                   f"{ids.FLEET_HIGHLIGHT}.value": "LV-903"},
+                   f"{ids.FLEET_HIGHLIGHT}.value")[ids.FLEET_FAMILY]
+    assert chosen["value"] == "Tavrin 6V"  # LV-903's family (demo_fleet/README.md)
+    values = {f"{ids.FLEET_AS_OF}.date": DEMO_DAY, f"{ids.FLEET_FAMILY}.value": "Tavrin 6V",
+              f"{ids.FLEET_PRESSURE_UNIT}.value": "bar", f"{ids.FLEET_HIGHLIGHT}.value": "LV-903"}
+    drawn = _call(demo_client, ids.FLEET_HOURS, values, f"{ids.FLEET_FAMILY}.value")
+    hours = drawn[ids.FLEET_HOURS]["figure"]
+    assert hours["layout"]["yaxis"]["title"]["text"] == "lowest cylinder (bar, sea-level " \
+                                                        "equivalent)"
+    assert "LV-903 (chosen)" in [t.get("name") for t in hours["data"]]
+    sites = drawn[ids.FLEET_SITES]["figure"]
+    assert sum(t["type"] == "box" for t in sites["data"]) == 2 * len(
+        sites["layout"]["xaxis"]["ticktext"])
+    assert "apart at sea level" in drawn[ids.FLEET_NOTE]["children"]
+    wear = _call(demo_client, ids.FLEET_WEAR, values,
+                 f"{ids.FLEET_HIGHLIGHT}.value")[ids.FLEET_WEAR]["figure"]
+    assert [t["name"] for t in wear["data"] if t["type"] == "box"] == [
+        "Fennick 4L", "Orsel 6D", "Quillan 6G", "Tavrin 6V"]
+
+
+@pytest.mark.parametrize(("row", "cells"), [
+    ({"change": "worse", "previous_level": "sound", "level": "act", "hours_to_limit": 0.0,
+      "projected_date_early": "2026-11-13", "projected_date": "2026-11-13"},
+     {"change": "worse, was ○ sound", "level": "■ act", "hours_to_limit": "0 h",
+      "limit_date": "2026-11-13"}),
+    ({"change": "better", "previous_level": "retest", "level": "watch",
+      "hours_to_limit": 1234.0, "projected_date_early": "2027-02-01",
+      "projected_date": "2027-06-30"},
+     {"change": "better, was ◆ retest", "level": "● watch", "hours_to_limit": "1,234 h",
+      "limit_date": "2027-02-01 (best estimate 2027-06-30)"}),
+    ({"change": None, "previous_level": None, "level": "sound", "hours_to_limit": None,
+      "projected_date_early": None, "projected_date": None},
+     {"change": "– no snapshot last week", "level": "○ sound", "hours_to_limit": "–",
+      "limit_date": "–"}),
+    ({"change": "new", "previous_level": None, "level": "plan"},
+     {"change": "new this week", "level": "▲ plan"}),
+])
+def test_board_cells_say_level_and_change_in_words(row: dict[str, Any],
+                                                   cells: dict[str, str]) -> None:
+    base = {"fleet_no": "T-1", "site": "S", "engine_family": "F", "main_text": None,
+            "last_tested_at": "2026-11-13 09:00"}
+    shown = components.board_table_rows([{**base, **row}], "2026-12-01")[0]
+    assert {key: shown[key] for key in cells} == cells
+    assert shown["last_test"] == "2026-11-13"
+    assert shown["reason"] == "Nothing found: every check passes."
+
+
+def test_unit_links_survive_odd_fleet_numbers() -> None:
+    # RFC 3986 percent-encoding in the address; markdown's own characters escaped in the text.
+    row = {"fleet_no": "A&B [7]", "site": "S", "engine_family": "F", "level": "sound"}
+    cell = components.board_table_rows([row], None)[0]["fleet_no"]
+    assert cell == r"[A&B \[7\]](/unit?fleet_no=A%26B+%5B7%5D)"
+
+
+def test_a_fleet_with_no_tests_yet_answers_on_every_page(tmp_path: Path) -> None:
+    url = f"sqlite:///{tmp_path / 'new.sqlite'}"
+    migrate.upgrade(url)
+    ingest.import_files(db.get_engine(url), [DATA / "fleet.csv"], by="test")
+    client = create_app(url).server.test_client()
+    day = "2024-06-01"
+    board = _call(client, ids.BOARD_TABLE, {f"{ids.BOARD_AS_OF}.date": day},
+                  f"{ids.BOARD_AS_OF}.date")
+    # design.md: a unit never tested asks for a test (retest, no_test).
+    assert {r["level"] for r in board[ids.BOARD_TABLE]["data"]} == {"◆ retest"}
+    unit = {f"{ids.UNIT_PICK}.value": "T-201", f"{ids.UNIT_AS_OF}.date": day,
+            f"{ids.UNIT_PRESSURE_UNIT}.value": "bar", f"{ids.UNIT_BASIS}.value": "measured"}
+    assert "never tested" in str(_call(client, ids.UNIT_SUMMARY, unit, f"{ids.UNIT_PICK}.value"))
+    for output in (ids.UNIT_COMPRESSION, ids.UNIT_SPREAD):
+        figure = _call(client, output, unit, f"{ids.UNIT_PICK}.value")[output]["figure"]
+        assert figure["layout"]["annotations"][0]["text"].startswith("No ")
+    fleet = {f"{ids.FLEET_AS_OF}.date": day, f"{ids.FLEET_FAMILY}.value": "TEST-V6",
+             f"{ids.FLEET_PRESSURE_UNIT}.value": "psi"}
+    wear = _call(client, ids.FLEET_WEAR, fleet, f"{ids.FLEET_AS_OF}.date")[ids.FLEET_WEAR]
+    assert wear["figure"]["layout"]["annotations"][0]["text"] == "No fitted wear lines yet."
+    drawn = _call(client, ids.FLEET_HOURS, fleet, f"{ids.FLEET_FAMILY}.value")
+    assert drawn[ids.FLEET_NOTE]["children"] == "One site only: nothing to compare."

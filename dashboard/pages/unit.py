@@ -1,0 +1,114 @@
+"""Unit history: one unit's level and reasons, its wear per cylinder, spread, vacuum, tests."""
+
+from __future__ import annotations
+
+import datetime as dt
+from typing import Any
+
+import dash
+from dash import Input, Output, State, callback, dcc, html
+
+from dashboard import components, data, figures, ids
+from fleetdb.errors import UnitNotFound
+
+dash.register_page(__name__, path="/unit", name="Unit history", title="Unit history · fleetdb",
+                   order=1)
+
+_GRAPH_CONFIG = {"displaylogo": False, "modeBarButtonsToRemove": ["select2d", "lasso2d"]}
+_NO_UNIT = "Pick a unit to draw its history."
+
+
+def _radio(component_id: str, options: list[Any], value: str) -> dcc.RadioItems:
+    return dcc.RadioItems(id=component_id, options=options, value=value, inline=True,
+                          className="radio")
+
+
+def layout(fleet_no: str | None = None, as_of: str | None = None, **_query: Any) -> html.Div:
+    """The page; cheap: the unit is read by the callbacks (``/unit?fleet_no=LT-902``)."""
+    day = data.parse_day(as_of) or dt.date.today()
+    return html.Div([
+        html.H1("Unit history"),
+        html.Div([
+            components.field("Unit", dcc.Dropdown(
+                id=ids.UNIT_PICK, value=fleet_no, placeholder="Type a fleet number…",
+                options=[{"label": fleet_no, "value": fleet_no}] if fleet_no else [],
+                clearable=False), class_name="field filter filter-wide"),
+            components.field("As of", dcc.DatePickerSingle(
+                id=ids.UNIT_AS_OF, date=day.isoformat(), display_format="YYYY-MM-DD",
+                first_day_of_week=1, clearable=False), class_name="field filter"),
+            components.field("Pressure unit", _radio(ids.UNIT_PRESSURE_UNIT,
+                                                     list(data.PRESSURE_UNITS), "psi"),
+                             class_name="field filter"),
+            components.field("Compression shown", _radio(ids.UNIT_BASIS, [
+                {"label": "sea-level equivalent", "value": "sea_level"},
+                {"label": "as measured", "value": "measured"}], "sea_level"),
+                class_name="field filter"),
+        ], className="filters panel"),
+        html.Div(id=ids.UNIT_SUMMARY),
+        html.Section([
+            dcc.Graph(id=ids.UNIT_COMPRESSION, config=_GRAPH_CONFIG),
+            html.P("Solid lines: the current wear line of each cylinder; dotted: its "
+                   "projection to the family minimum. Hollow grey markers are tests left out "
+                   "of the fits (not trustworthy: hollow circle; voided: ×); a downward "
+                   "triangle is a sudden drop. Dotted vertical lines are service work.",
+                   className="hint"),
+        ], className="panel"),
+        html.Div([
+            html.Section(dcc.Graph(id=ids.UNIT_SPREAD, config=_GRAPH_CONFIG),
+                         className="panel"),
+            html.Section(dcc.Graph(id=ids.UNIT_VACUUM, config=_GRAPH_CONFIG),
+                         className="panel"),
+        ], className="chart-pair"),
+        html.Section([html.H2("Tests, newest first"), html.Div(id=ids.UNIT_TESTS)],
+                     className="panel"),
+    ])
+
+
+def _report(fleet_no: str | None, as_of: str | None) -> dict[str, Any] | str:
+    """The unit's report, or the sentence to show instead."""
+    if not fleet_no:
+        return _NO_UNIT
+    try:
+        return data.unit_report(data.current_url(), fleet_no, data.parse_day(as_of))
+    except UnitNotFound as exc:
+        return str(exc)
+
+
+# -- callbacks --------------------------------------------------------------------------------
+
+@callback(Output(ids.UNIT_PICK, "options"), Input(ids.UNIT_PICK, "search_value"),
+          State(ids.UNIT_PICK, "value"))
+def _offer_units(search: str | None, selected: str | None) -> list[dict[str, str]]:
+    return data.unit_options(data.current_url(), search, selected)
+
+
+@callback(Output(ids.UNIT_SUMMARY, "children"), Output(ids.UNIT_TESTS, "children"),
+          Input(ids.UNIT_PICK, "value"), Input(ids.UNIT_AS_OF, "date"),
+          Input(ids.UNIT_PRESSURE_UNIT, "value"))
+def _describe_unit(fleet_no: str | None, as_of: str | None, unit: str) -> tuple[Any, Any]:
+    report = _report(fleet_no, as_of)
+    if isinstance(report, str):
+        shown = (html.P(report, className="hint") if report == _NO_UNIT
+                 else components.problem_list("Unit not found", [("Fleet number", report)]))
+        return shown, None
+    return components.unit_header(report, unit), components.tests_table(report, unit)
+
+
+@callback(Output(ids.UNIT_COMPRESSION, "figure"), Input(ids.UNIT_PICK, "value"),
+          Input(ids.UNIT_AS_OF, "date"), Input(ids.UNIT_PRESSURE_UNIT, "value"),
+          Input(ids.UNIT_BASIS, "value"))
+def _draw_compression(fleet_no: str | None, as_of: str | None, unit: str, basis: str) -> Any:
+    report = _report(fleet_no, as_of)
+    if isinstance(report, str):
+        return figures.message_figure(report, "Compression per cylinder")
+    return figures.unit_compression(report, unit, basis=basis)
+
+
+@callback(Output(ids.UNIT_SPREAD, "figure"), Output(ids.UNIT_VACUUM, "figure"),
+          Input(ids.UNIT_PICK, "value"), Input(ids.UNIT_AS_OF, "date"))
+def _draw_spread_and_vacuum(fleet_no: str | None, as_of: str | None) -> tuple[Any, Any]:
+    report = _report(fleet_no, as_of)
+    if isinstance(report, str):
+        return (figures.message_figure(report, "Spread"),
+                figures.message_figure(report, "Manifold vacuum"))
+    return figures.unit_spread(report), figures.unit_vacuum(report)
