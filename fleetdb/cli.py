@@ -541,3 +541,11 @@ def defaults(as_json: bool) -> None:
 def main() -> None:
     """Console-script entry point."""
     cli(prog_name="fleetdb")
+
+
+# The planner's commands live in their own module, which imports the helpers above.
+from fleetdb.cli_plan import plan as plan_command  # noqa: E402
+from fleetdb.cli_plan import report as report_command  # noqa: E402
+
+cli.add_command(plan_command)
+cli.add_command(report_command)

@@ -261,6 +261,9 @@ def board(engine: Engine, as_of: dt.date | None = None, *, site: str | None = No
         had_previous = conn.execute(text(
             "SELECT COUNT(*) FROM health_snapshot WHERE week_start = :p"),
             {"p": previous}).scalar_one() > 0
+    from fleetdb.plan import bookings, iso_week
+
+    booked = bookings(engine, day)
     counts_by_site: dict[str, dict[str, int]] = {}
     for name, lvl, n in by_site:
         counts_by_site.setdefault(name, {x: 0 for x in LEVELS})[lvl] = int(n)
@@ -269,7 +272,9 @@ def board(engine: Engine, as_of: dt.date | None = None, *, site: str | None = No
         "previous_week_start": previous.isoformat() if had_previous else None,
         "total": int(total), "counts": {lvl: int(counts.get(lvl, 0)) for lvl in LEVELS},
         "counts_by_site": counts_by_site,
-        "rows": [_board_row(r, day, had_previous) for r in rows],
+        "rows": [{**_board_row(r, day, had_previous),
+                  "booked_week": iso_week(booked[r[0]]) if r[0] in booked else None}
+                 for r in rows],
     }
 
 

@@ -53,7 +53,7 @@ def test_vacuum_drop_per_1000_ft() -> None:
 
 
 def test_absolute_from_gauge_at_altitude() -> None:
-    # 150 psig at ISA 5000 ft is 162.228 psia = 1 118.52 kPa absolute (definition p_abs = p_g + p_b).
+    # 150 psig at ISA 5000 ft is 162.228 psia = 1 118.52 kPa absolute (p_abs = p_g + p_b).
     p_abs = 150 * PSI + atm.pressure_kpa(5000 * FT)
     assert p_abs / PSI == pytest.approx(162.228, abs=1e-3)
     assert p_abs == pytest.approx(1118.52, abs=0.01)
