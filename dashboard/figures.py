@@ -361,6 +361,8 @@ def unit_vacuum(report: dict) -> go.Figure:
 
 #: Most unit markers drawn per family or site before sampling (the box still uses them all).
 MAX_POINTS = 300
+#: Most unit markers drawn per site and panel on the sites chart.
+MAX_SITE_POINTS = 60
 #: Most units drawn as their own series on the hours chart; the rest are in the band.
 MAX_UNIT_SERIES = 30
 _HIGHLIGHT = "#1d2329"
@@ -375,12 +377,21 @@ def _box_stats(values: pd.Series) -> dict[str, float]:
             "upperfence": float(inside.max())}
 
 
-def _sample(frame: pd.DataFrame, n: int, keep: pd.Series | None = None) -> pd.DataFrame:
-    """At most ``n`` rows, evenly spread over the frame's order, plus every row in ``keep``."""
+def _evenly(frame: pd.DataFrame, n: int) -> pd.DataFrame:
     if len(frame) <= n:
         return frame
-    picked = frame.iloc[np.linspace(0, len(frame) - 1, n).round().astype(int)]
-    return picked if keep is None else pd.concat([picked, frame[keep]]).drop_duplicates()
+    return frame.iloc[np.linspace(0, len(frame) - 1, n).round().astype(int)]
+
+
+def _sample(frame: pd.DataFrame, n: int, keep: pd.Series | None = None) -> pd.DataFrame:
+    """At most ``n`` rows evenly spread over the frame's order, plus rows in ``keep`` (all of
+    them up to n / 3, else n / 3 of them, evenly spread too)."""
+    if len(frame) <= n:
+        return frame
+    picked = _evenly(frame, n)
+    if keep is None:
+        return picked
+    return pd.concat([picked, _evenly(frame[keep], n // 3)]).drop_duplicates()
 
 
 def _jitter(n: int, width: float = 0.28) -> np.ndarray:
@@ -536,7 +547,7 @@ def sites_compared(latest: pd.DataFrame, unit: str, family: str) -> go.Figure:
                                  line={"color": _BAR}, hoverinfo="skip",
                                  **{k: [v] for k, v in _box_stats(values).items()}),
                           row=1, col=col)
-            shown = _sample(one, MAX_POINTS)
+            shown = _sample(one, MAX_SITE_POINTS)
             fig.add_trace(go.Scatter(
                 x=place + _jitter(len(shown)), y=values[shown.index], mode="markers",
                 showlegend=False, customdata=np.stack([shown["fleet_no"],

@@ -231,13 +231,16 @@ def test_family_wear_rates_box_per_family_and_the_highlighted_unit() -> None:
 
 
 def test_family_wear_rates_samples_large_families_but_keeps_the_fast_ones() -> None:
-    wear = _wear_frame(3000)
+    wear = _wear_frame(3000)  # 31 fast units: fewer than a third of the sample, all kept
     fig = figures.family_wear_rates(wear, "kPa")
     placed = [t for t in fig.data if t.type == "scatter" and t.customdata is not None]
-    assert all(len(t.x) <= figures.MAX_POINTS + wear["faster_than_family"].sum()
-               for t in placed)
+    assert all(len(t.x) <= figures.MAX_POINTS + figures.MAX_POINTS // 3 for t in placed)
     shown = {row[0] for t in placed for row in t.customdata}
     assert set(wear.loc[wear["faster_than_family"], "fleet_no"]) <= shown
+    many_fast = wear.assign(faster_than_family=True)
+    placed = [t for t in figures.family_wear_rates(many_fast, "kPa").data
+              if t.type == "scatter" and t.customdata is not None]
+    assert all(len(t.x) <= figures.MAX_POINTS + figures.MAX_POINTS // 3 for t in placed)
 
 
 def _tests_frame() -> pd.DataFrame:
