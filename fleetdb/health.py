@@ -242,13 +242,19 @@ def board(engine: Engine, as_of: dt.date | None = None, *, site: str | None = No
         params["level"] = level
     page = f" LIMIT {int(limit)} OFFSET {int(offset)}" if limit is not None else ""
     with engine.connect() as conn:
-        rows = conn.execute(text(
-            "SELECT s.unit_id, u.fleet_no, st.name, f.name, s.level, s.main_code, s.main_text, "
-            "s.reasons_json, s.projected_date, s.projected_date_early, s.projected_hours, "
-            "s.projected_hours_early, s.last_tested_at, s.last_hours, p.level "
-            + base + "WHERE " + " AND ".join(level_where)
+        # Sort and page on the keys alone, then fetch the wide columns of one page.
+        ids = [r[0] for r in conn.execute(text(
+            "SELECT s.id " + base + "WHERE " + " AND ".join(level_where)
             + f" ORDER BY {_LEVEL_ORDER}, (s.projected_date_early IS NULL), "
-            "s.projected_date_early, u.fleet_no" + page), params).all()
+            "s.projected_date_early, u.fleet_no" + page), params)]
+        wide = conn.execute(text(
+            "SELECT s.id, s.unit_id, u.fleet_no, st.name, f.name, s.level, s.main_code, "
+            "s.main_text, s.reasons_json, s.projected_date, s.projected_date_early, "
+            "s.projected_hours, s.projected_hours_early, s.last_tested_at, s.last_hours, p.level "
+            + base + "WHERE s.id IN (" + (",".join(str(int(i)) for i in ids) or "NULL") + ")"),
+            {"p": previous}).all()
+        by_id = {r[0]: r[1:] for r in wide}
+        rows = [by_id[i] for i in ids]
         total = conn.execute(text("SELECT COUNT(*) " + base + "WHERE "
                                   + " AND ".join(level_where)), params).scalar_one()
         counts = dict(conn.execute(text("SELECT s.level, COUNT(*) " + base + "WHERE "
