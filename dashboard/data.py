@@ -3,8 +3,9 @@
 The dashboard computes no analysis of its own. Every function takes the database URL
 (kept in ``app.server.config``, see :func:`current_url`) and calls fleetdb: ``views`` to
 read, ``logbook`` to check and write a test, ``health`` for levels, verdicts, the board
-and the unit report. The Fleet wear page's fleet-level frames (:func:`fleet_wear`) are
-gathered here from ``frames.load`` and ``assess.assess`` until fleetdb offers them.
+and the unit report, ``plan`` and ``exports`` for the overhaul schedule and its files.
+The Fleet wear page's fleet-level frames (:func:`fleet_wear`) are gathered here from
+``frames.load`` and ``assess.assess`` until fleetdb offers them.
 """
 
 from __future__ import annotations
@@ -13,6 +14,7 @@ import csv
 import datetime as dt
 import importlib
 import io
+import re
 from dataclasses import dataclass, field
 from functools import lru_cache
 from types import ModuleType
@@ -25,8 +27,8 @@ from sqlalchemy import text
 from sqlalchemy.engine import Engine
 from sqlalchemy.exc import IntegrityError
 
-from fleetdb import assess, db, frames, health, logbook, views
-from fleetdb.errors import InvalidInput, Problem
+from fleetdb import assess, db, exports, frames, health, logbook, plan, views
+from fleetdb.errors import InvalidInput, InvalidValue, Problem
 from fleetdb.validate import parse_banks
 
 #: The key of ``app.server.config`` that holds the database URL.
@@ -471,3 +473,209 @@ def _fleet_wear(url: str, day: dt.date, version: tuple[int, int, int]) -> FleetW
         ["fleet_no", "tested_at"], ignore_index=True)
     latest = tests.groupby("fleet_no", sort=False).tail(1).reset_index(drop=True)
     return FleetWear(wear=wear, families=families, tests=tests, latest=latest)
+
+
+# -- Overhaul plan --------------------------------------------------------------------------
+
+#: Weeks of the planning window shown (the health board's planning horizon).
+PLAN_WEEKS = 13
+#: The key of closed weeks that apply to every site (``fleetdb.plan.ALL_SITES``).
+EVERY_SITE = plan.ALL_SITES
+_MAX_CLOSED_RANGE_WEEKS = 520
+
+
+@dataclass(frozen=True)
+class PlanForm:
+    """The what-if settings as typed on the Plan page; every value is what the input holds.
+
+    ``capacity`` and ``lead_weeks``: site -> number (None when blank). ``closed``: site (or
+    ``fleetdb.plan.ALL_SITES`` for every site) -> weeks like ``2026-W52, 2026-W53`` or a range
+    ``2026-W52..2027-W01``. ``priority``: ``FLEET_NO=WEEKS`` items, comma separated.
+    """
+
+    capacity: dict[str, Any] = field(default_factory=dict)
+    lead_weeks: dict[str, Any] = field(default_factory=dict)
+    closed: dict[str, str | None] = field(default_factory=dict)
+    priority: str | None = None
+
+
+def _whole_number(value: Any, what: str) -> int:
+    """A whole number of 0 or more from a number input or text; InvalidValue otherwise."""
+    typed = _text(value)
+    try:
+        number = float(typed)
+    except ValueError:
+        number = float("nan")
+    if not number.is_integer() or number < 0:
+        raise InvalidValue(f"{what}: write a whole number of 0 or more, not "
+                           f"{typed!r}" if typed else f"{what}: write a whole number of 0 or "
+                           "more (it is blank)")
+    return int(number)
+
+
+def parse_closed_weeks(typed: str | None, where: str) -> frozenset[dt.date]:
+    """The Mondays of the weeks typed: ``2026-W52, 2026-W53`` or ``2026-W52..2027-W01``.
+
+    :param typed: the text; blank means no closed week.
+    :param where: what the text is, for the message (``Closed weeks at Saltgrass Quay``).
+    :raises InvalidValue: a week that is not an ISO week, or a range that runs backwards.
+    """
+    days: set[dt.date] = set()
+    for item in re.split(r"[,;\s]+", _text(typed)):
+        if not item:
+            continue
+        first, _, last = item.partition("..")
+        try:
+            start, end = plan.parse_week(first), plan.parse_week(last or first)
+        except InvalidValue as exc:
+            raise InvalidValue(f"{where}: {exc}") from None
+        span = (end - start).days // 7
+        if not 0 <= span <= _MAX_CLOSED_RANGE_WEEKS:
+            raise InvalidValue(f"{where}: {item!r} must run forwards, at most "
+                               f"{_MAX_CLOSED_RANGE_WEEKS} weeks")
+        days.update(start + dt.timedelta(weeks=n) for n in range(span + 1))
+    return frozenset(days)
+
+
+def parse_priorities(typed: str | None) -> dict[str, int]:
+    """``LT-902=2, GS-901=1`` -> ``{"LT-902": 2, "GS-901": 1}`` (0 removes a raise).
+
+    :raises InvalidValue: an item that is not ``FLEET_NO=WEEKS`` with whole weeks.
+    """
+    out: dict[str, int] = {}
+    for item in re.split(r"[,;\n]+", _text(typed)):
+        fleet_no, sep, weeks = item.strip().rpartition("=")
+        if not item.strip():
+            continue
+        if not sep or not fleet_no.strip():
+            raise InvalidValue(f"Priority raises: {item.strip()!r}: write FLEET_NO=WEEKS, "
+                               "like LT-902=2")
+        out[fleet_no.strip()] = _whole_number(weeks, f"Priority raise of {fleet_no.strip()}")
+    return out
+
+
+def settings_from_form(form: PlanForm, base: plan.ShopSettings) -> plan.ShopSettings:
+    """The shop settings the form describes, on top of ``base`` (the settings in force).
+
+    A site's value equal to the default is not stored per site; a site missing from the
+    form keeps its value from ``base``. Closed weeks and priorities are replaced.
+
+    :raises InvalidValue: a blank, negative or fractional number, a bad week, a bad raise.
+    """
+    def per_site(typed: dict[str, Any], kept: Any, default: int, what: str) -> dict[str, int]:
+        values = {**kept, **{site: _whole_number(v, f"{what} at {site}")
+                             for site, v in typed.items()}}
+        return {site: n for site, n in values.items() if n != default}
+
+    closed = {site: parse_closed_weeks(text_, "Closed weeks at every site"
+                                       if site == plan.ALL_SITES else f"Closed weeks at {site}")
+              for site, text_ in form.closed.items()}
+    return plan.ShopSettings(
+        default_capacity=base.default_capacity,
+        capacity=per_site(form.capacity, base.capacity, base.default_capacity, "Capacity"),
+        default_lead_weeks=base.default_lead_weeks,
+        lead_weeks=per_site(form.lead_weeks, base.lead_weeks, base.default_lead_weeks,
+                            "Parts lead time"),
+        closed={site: days for site, days in closed.items() if days},
+        priority={f: n for f, n in parse_priorities(form.priority).items() if n})
+
+
+def plan_settings_in_force(url: str, as_of: dt.date | None) -> plan.ShopSettings:
+    """The settings of the latest committed plan as of the day, else fleetdb's defaults."""
+    return plan.current_settings(engine_for(url), as_of or dt.date.today())
+
+
+@dataclass
+class PlanOutcome:
+    """A plan to show and how it came about.
+
+    ``kind``: ``in_force`` (the plan under the settings in force; stored or not),
+    ``what_if`` (under the form's settings, not stored) or ``committed`` (just stored).
+    ``in_force``: ``fleetdb.plan.latest_plan`` as of the day after the action (None: none yet).
+    ``comparison``: ``fleetdb.plan.compare`` of the plan in force (before the action) with
+    this one, for a what-if or a commit.
+    """
+
+    kind: str
+    plan: plan.Plan
+    in_force: dict[str, Any] | None
+    comparison: dict[str, Any] | None = None
+
+    @property
+    def is_stored(self) -> bool:
+        """Whether this schedule is the committed plan in force: every job kept its booking."""
+        if self.plan.committed:
+            return True
+        return (self.in_force is not None and self.plan.based_on == self.in_force["plan_id"]
+                and bool((self.plan.jobs["status"] == "booked").all()))
+
+    def key(self) -> dict[str, Any]:
+        """What the page keeps in the browser to export the same plan again (no frames)."""
+        committed = self.plan.committed
+        if committed is None and self.is_stored and self.in_force is not None:
+            committed = {k: self.in_force[k] for k in ("plan_id", "created_by", "created_at")}
+        return {"as_of": self.plan.as_of.isoformat(), "settings": self.plan.settings.to_json(),
+                "kind": self.kind, "committed": committed}
+
+
+def plan_in_force(url: str, as_of: dt.date | None) -> PlanOutcome:
+    """The schedule under the settings in force (bookings of the committed plan kept)."""
+    engine, day = engine_for(url), as_of or dt.date.today()
+    return PlanOutcome("in_force", plan.make_plan(engine, day, weeks=PLAN_WEEKS),
+                       plan.latest_plan(engine, day))
+
+
+def _compared(url: str, day: dt.date, form: PlanForm) -> tuple[plan.Plan, dict[str, Any]]:
+    engine = engine_for(url)
+    base = plan.current_settings(engine, day)
+    changed = plan.make_plan(engine, day, settings_from_form(form, base), weeks=PLAN_WEEKS)
+    current = plan.make_plan(engine, day, base, weeks=PLAN_WEEKS)
+    return changed, plan.compare(current, changed)
+
+
+def try_plan(url: str, as_of: dt.date | None, form: PlanForm) -> PlanOutcome:
+    """The schedule under the form's settings and what changes against the plan in force.
+
+    Nothing is stored. Raises :class:`InvalidValue` for a bad input, an unknown site or
+    fleet number (fleetdb's own message).
+    """
+    day = as_of or dt.date.today()
+    changed, comparison = _compared(url, day, form)
+    return PlanOutcome("what_if", changed, plan.latest_plan(engine_for(url), day), comparison)
+
+
+def commit_plan(url: str, as_of: dt.date | None, form: PlanForm, who: str | None) -> PlanOutcome:
+    """Store the schedule under the form's settings (``fleetdb.plan.commit``) and return it.
+
+    :param who: who commits (required: a web server's login name says nothing).
+    :raises InvalidValue: no name, or a bad input (then nothing is stored).
+    """
+    name = _text(who)
+    if not name:
+        raise InvalidValue("Committed by: write your name before committing.")
+    day = as_of or dt.date.today()
+    changed, comparison = _compared(url, day, form)
+    plan.commit(engine_for(url), changed, name)
+    return PlanOutcome("committed", changed, plan.latest_plan(engine_for(url), day), comparison)
+
+
+def plan_export(url: str, key: dict[str, Any], kind: str) -> tuple[str, str]:
+    """The plan a page shows as CSV or iCalendar text, and a file name for it.
+
+    The schedule is made again from ``key`` (:meth:`PlanOutcome.key`: day and settings), so
+    the browser never holds it; a committed plan is exported as such (confirmed events).
+
+    :param key: what the page keeps of the plan it shows.
+    :param kind: ``csv`` or ``ics``.
+    """
+    day = dt.date.fromisoformat(key["as_of"])
+    made = plan.make_plan(engine_for(url), day, plan.ShopSettings.from_json(key["settings"]),
+                          weeks=PLAN_WEEKS)
+    committed = key.get("committed")
+    shape = made.to_dict()
+    shape["committed"] = committed
+    name = f"overhaul-plan-{shape['week']}" + (
+        f"-plan{committed['plan_id']}" if committed else "-draft")
+    if kind == "ics":
+        return exports.plan_ics(shape), name + ".ics"
+    return exports.plan_csv(shape), name + ".csv"

@@ -563,3 +563,122 @@ def sites_compared(latest: pd.DataFrame, unit: str, family: str) -> go.Figure:
     fig = _layout(fig, title=title, x_title="site (elevation)", y_title=y_title, height=420)
     fig.update_yaxes(title_text=None, row=1, col=2)
     return fig
+
+
+# -- Overhaul plan ------------------------------------------------------------------------------
+
+#: How a booked overhaul is drawn by its timing: (marker symbol, colour, legend words). The
+#: shape and the words under each marker tell late from on time; the colour only repeats it.
+PLAN_MARKERS: dict[str, tuple[str, str, str]] = {
+    "on_time": ("circle", "#1f5d8c", "on time: in or before its due week"),
+    "late": ("x", "#8a1c1c", "late: after its conservative projected limit"),
+}
+_JOB_PX, _SLOT_PX = 46, 24  # height of one stacked overhaul and of the slots line, pixels
+
+
+def _week_index(days: pd.Series, week0: pd.Timestamp) -> np.ndarray:
+    return ((pd.to_datetime(days) - week0).dt.days // 7).to_numpy(int)
+
+
+def plan_timeline(jobs: pd.DataFrame, load: pd.DataFrame, *, title: str = "") -> go.Figure:
+    """The schedule week by week: one row per site, each booked overhaul a labelled marker.
+
+    Each week of a site shows its slots used over its capacity (``1/2``, ``closed``). A late
+    overhaul is a cross labelled ``late by N wk`` with a dotted tail back to its due week; an
+    overhaul on time is a dot. Traces carry ``meta = {"site", "kind"}`` (kind ``on_time``,
+    ``late``, ``late_tail`` or ``slots``).
+
+    :param jobs: ``Plan.jobs``: ``fleet_no, site, level, week, week_start, due_week,
+        due_week_start, lateness_weeks, status`` per overhaul.
+    :param load: ``Plan.load``: ``site, week, week_start, capacity, used, closed``; its first
+        week is week 0 of the plan.
+    :param title: the figure title.
+    """
+    if load.empty:
+        return message_figure("No site in the store: nothing to plan.", title)
+    week0 = pd.Timestamp(pd.to_datetime(load["week_start"]).min())
+    sites = sorted(set(load["site"]) | set(jobs["site"]))
+    jobs = jobs.assign(x=_week_index(jobs["week_start"], week0),
+                       due_x=_week_index(jobs["due_week_start"], week0)).sort_values(
+        ["site", "x", "lateness_weeks", "fleet_no"], ascending=[True, True, False, True])
+    jobs["stack"] = jobs.groupby(["site", "x"]).cumcount().to_numpy(int)
+    # The y axis counts pixels from the top: each site's row is as tall as its deepest week.
+    depth = jobs.groupby("site")["stack"].max().reindex(sites).fillna(0).to_numpy(int) + 1
+    bottoms = np.cumsum(_SLOT_PX + _JOB_PX * depth + 8)
+    tops = bottoms - (_SLOT_PX + _JOB_PX * depth + 8)
+    load_x = _week_index(load["week_start"], week0)
+    last = int(max(load_x.max(), jobs["x"].max() if len(jobs) else 0))
+    fig = go.Figure()
+    legend_shown: set[str] = set()
+    for site, top in zip(sites, tops, strict=True):
+        site_jobs = jobs[jobs["site"] == site]
+        y_jobs = top + _SLOT_PX + 10 + _JOB_PX * site_jobs["stack"].to_numpy()
+        late = site_jobs["lateness_weeks"].to_numpy() > 0
+        tail = site_jobs[late]
+        if len(tail):
+            xs = np.column_stack([tail["due_x"], tail["x"], np.full(len(tail), np.nan)])
+            ys = np.repeat(y_jobs[late], 3)
+            fig.add_trace(go.Scatter(
+                x=xs.ravel(), y=ys, mode="lines+markers", hoverinfo="skip",
+                line={"color": PLAN_MARKERS["late"][1], "dash": "dot", "width": 1.5},
+                marker={"symbol": "line-ns-open", "size": 12, "color": PLAN_MARKERS["late"][1]},
+                name="late: from its due week to its booked week", legendgroup="late_tail",
+                showlegend="late_tail" not in legend_shown,
+                meta={"site": site, "kind": "late_tail"}))
+            legend_shown.add("late_tail")
+        for kind, mask in (("on_time", ~late), ("late", late)):
+            part = site_jobs[mask]
+            if part.empty:
+                continue
+            symbol, colour, words = PLAN_MARKERS[kind]
+            labels = [f"{f}<br>late by {n} wk" if kind == "late" else f
+                      for f, n in zip(part["fleet_no"], part["lateness_weeks"], strict=True)]
+            hover = [f"<b>{r.fleet_no}</b> · {site}<br>level {r.level} · {r.status}<br>due "
+                     f"{r.due_week}, booked {r.week}<br>" + (
+                         f"late by {r.lateness_weeks} wk" if r.lateness_weeks > 0 else
+                         "in its due week" if r.lateness_weeks == 0 else
+                         f"{-r.lateness_weeks} wk before its due week")
+                     for r in part.itertuples()]
+            fig.add_trace(go.Scatter(
+                x=part["x"], y=y_jobs[mask], mode="markers+text", text=labels,
+                textposition="bottom center", textfont={"size": 11, "color": "#1d2329"},
+                hovertext=hover, hovertemplate="%{hovertext}<extra></extra>",
+                marker={"symbol": symbol, "size": 11, "color": colour,
+                        "line": {"width": 2, "color": colour}},
+                name=words, legendgroup=kind, showlegend=kind not in legend_shown,
+                meta={"site": site, "kind": kind}))
+            legend_shown.add(kind)
+        slots = load[load["site"] == site]
+        full = slots["used"].to_numpy() >= slots["capacity"].to_numpy()
+        words = ["closed" if shut else f"<b>{u}/{c}</b>" if f else f"{u}/{c}"
+                 for shut, u, c, f in zip(slots["closed"], slots["used"], slots["capacity"],
+                                          full, strict=True)]
+        hover = [f"{site}, {w}: closed" if shut else f"{site}, {w}: {u} of {c} slot(s) used"
+                 for w, shut, u, c in zip(slots["week"], slots["closed"], slots["used"],
+                                          slots["capacity"], strict=True)]
+        fig.add_trace(go.Scatter(
+            x=load_x[(load["site"] == site).to_numpy()], y=[top + 14] * len(slots),
+            mode="text", text=words, textfont={"size": 11, "color": "#5b6670"},
+            hovertext=hover, hovertemplate="%{hovertext}<extra></extra>", showlegend=False,
+            name=f"{site}: slots used / capacity", meta={"site": site, "kind": "slots"}))
+    for bottom in bottoms[:-1]:
+        fig.add_hline(y=bottom, line={"color": "#1d2329", "width": 1})
+    for week in range(last):
+        fig.add_vline(x=week + 0.5, line={"color": "#e3e7ea", "width": 1})
+    ticks = [week0 + pd.Timedelta(weeks=n) for n in range(last + 1)]
+    fig.update_xaxes(range=[-0.5, last + 0.5], tickvals=list(range(last + 1)), showgrid=False,
+                     ticktext=[f"{t.isocalendar().year}-W{t.isocalendar().week:02d}<br>"
+                               f"{t:%d %b}" for t in ticks], side="top", zeroline=False)
+    fig.update_yaxes(range=[bottoms[-1], 0], tickvals=(tops + bottoms) / 2,
+                     ticktext=sites, showgrid=False, zeroline=False)
+    if jobs.empty:
+        fig.add_annotation(text="No unit at act or plan: nothing to schedule.", showarrow=False,
+                           xref="paper", yref="paper", x=0.5, y=0.5,
+                           font={"size": 14, "color": "#5b6670"})
+    margin = {"l": 130, "r": 20, "t": 70 if title else 50, "b": 40}
+    fig.update_layout(title={"text": title or None, "x": 0.01, "font": {"size": 15}},
+                      height=margin["t"] + margin["b"] + int(bottoms[-1]), margin=margin,
+                      plot_bgcolor="#ffffff", paper_bgcolor="#ffffff", font={"size": 13},
+                      hoverlabel={"bgcolor": "#fff"},
+                      legend={"orientation": "h", "y": -0.02, "yanchor": "top", "x": 0})
+    return fig

@@ -89,3 +89,51 @@ def log_cylinder(index: Any) -> dict[str, Any]:
 def is_log_cylinder(component_id: Any) -> bool:
     """Whether an id (as it comes back from the browser) is a cylinder input's."""
     return isinstance(component_id, dict) and component_id.get("type") == _LOG_CYLINDER_TYPE
+
+# -- Overhaul plan (/plan) -------------------------------------------------------------
+PLAN_AS_OF = "plan-as-of"
+PLAN_STATE = "plan-state"
+PLAN_MESSAGE = "plan-message"
+PLAN_SUMMARY = "plan-summary"
+PLAN_CHANGES = "plan-changes"
+PLAN_TIMELINE = "plan-timeline"
+PLAN_JOBS = "plan-jobs"
+PLAN_NOTES = "plan-notes"
+PLAN_SITES = "plan-sites"
+PLAN_CLOSED_ALL = "plan-closed-all"
+PLAN_PRIORITY = "plan-priority"
+PLAN_TRY = "plan-try"
+PLAN_WHO = "plan-who"
+PLAN_COMMIT = "plan-commit"
+PLAN_SHOWN = "plan-shown"
+PLAN_CSV = "plan-csv"
+PLAN_ICS = "plan-ics"
+PLAN_DOWNLOAD = "plan-download"
+
+_PLAN_CAPACITY_TYPE = "plan-capacity"
+_PLAN_LEAD_TYPE = "plan-lead"
+_PLAN_CLOSED_TYPE = "plan-closed"
+
+
+def plan_capacity(index: Any) -> dict[str, Any]:
+    """The id of one site's capacity input (overhauls per week) on the Plan page.
+
+    :param index: the site name, or a wildcard (``ALL``, ``MATCH``).
+    """
+    return {"type": _PLAN_CAPACITY_TYPE, "index": index}
+
+
+def plan_lead(index: Any) -> dict[str, Any]:
+    """The id of one site's parts lead time input (weeks) on the Plan page.
+
+    :param index: the site name, or a wildcard.
+    """
+    return {"type": _PLAN_LEAD_TYPE, "index": index}
+
+
+def plan_closed(index: Any) -> dict[str, Any]:
+    """The id of one site's closed weeks input (``2026-W52, 2026-W53``) on the Plan page.
+
+    :param index: the site name, or a wildcard.
+    """
+    return {"type": _PLAN_CLOSED_TYPE, "index": index}
