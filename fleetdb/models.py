@@ -297,3 +297,58 @@ class OverhaulBooking(SQLModel, table=True):
     lateness_weeks: int = 0  # > 0: the overhaul comes after the projected limit
     priority: int = 0  # weeks the planner moved the effective due week earlier
     status: str = Field(sa_column=Column(String(10), nullable=False))
+
+
+# The capture tables (migration 0004).
+from sqlalchemy import BigInteger, LargeBinary  # noqa: E402 - kept with the tables that use them
+
+
+class FiringOrder(SQLModel, table=True):
+    """An engine family's firing order, as given with a capture. Never changed in place: a
+    new row supersedes the older ones (the latest ``id`` of a family is in force)."""
+
+    __tablename__ = "firing_order"
+    id: int | None = Field(default=None, primary_key=True)
+    family_id: int = Field(foreign_key="engine_family.id", index=True)
+    firing_order: str = Field(sa_column=Column(String(120), nullable=False))  # "1-3-4-2"
+    created_at: datetime = Field(default_factory=_utcnow)
+    created_by: str = Field(sa_column=Column(String(80), nullable=False))
+
+
+class Capture(SQLModel, table=True):
+    """A recorded cranking or idle capture kept with the test whose readings it gave.
+
+    The samples are in :class:`CaptureBlock` rows (a compressed numpy archive split in
+    blocks); ``channel_map_json`` says which column is what, in which unit and scale, and
+    ``derived_json`` what was derived from it.
+    """
+
+    __tablename__ = "capture"
+    id: int | None = Field(default=None, primary_key=True)
+    test_id: int = Field(foreign_key="test.id", index=True)
+    file_name: str = Field(sa_column=Column(String(255), nullable=False))
+    content_sha256: str = Field(sa_column=Column(String(64), unique=True, nullable=False))
+    file_bytes: int = Field(sa_column=Column(BigInteger(), nullable=False))
+    samples: int
+    sample_rate_hz: float
+    start_s: float
+    duration_s: float
+    time_column: str = Field(sa_column=Column(String(120), nullable=False))
+    time_unit: str = Field(sa_column=Column(String(4), nullable=False))
+    channel_map_json: str = Field(sa_column=Column(Text(), nullable=False))
+    derived_json: str = Field(sa_column=Column(Text(), nullable=False))
+    data_format: str = Field(sa_column=Column(String(32), nullable=False))
+    data_bytes: int = Field(sa_column=Column(BigInteger(), nullable=False))
+    created_at: datetime = Field(default_factory=_utcnow)
+    created_by: str = Field(sa_column=Column(String(80), nullable=False))
+
+
+class CaptureBlock(SQLModel, table=True):
+    """One block of a capture's compressed samples, in order of ``seq``."""
+
+    __tablename__ = "capture_block"
+    __table_args__ = (UniqueConstraint("capture_id", "seq", name="uq_capture_block_seq"),)
+    id: int | None = Field(default=None, primary_key=True)
+    capture_id: int = Field(foreign_key="capture.id", index=True)
+    seq: int
+    data: bytes = Field(sa_column=Column(LargeBinary(), nullable=False))
