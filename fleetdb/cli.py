@@ -549,3 +549,7 @@ from fleetdb.cli_plan import report as report_command  # noqa: E402
 
 cli.add_command(plan_command)
 cli.add_command(report_command)
+
+from fleetdb.cli_capture import capture as capture_command  # noqa: E402
+
+cli.add_command(capture_command)
