@@ -1,21 +1,15 @@
 """Import benchmark: ``fleetdb import`` of a large tests file beside the practical floor.
 
 Each repetition starts from a fresh database (``fleetdb init``, then the fleet file) and
-loads the same tests file three ways, each in its own child process:
+loads the same tests file in child processes, one per variant (see :data:`VARIANTS`):
+the floor (csv module + bare driver, no checks), fleetdb's import through the library,
+and the ``fleetdb import`` console script (which also refreshes the health board).
 
-* **floor**: Python's csv module reading the file and the bare driver writing the same
-  test and reading rows (sqlite3 executemany, or psycopg COPY) in one transaction, with
-  no checks at all: the least work that stores the same content.
-* **ours: import**: ``fleetdb.ingest.import_files``, what ``fleetdb import`` calls: read,
-  validate, convert to SI, group into tests, write, commit.
-* **ours: CLI**: the installed ``fleetdb import`` console script: the same, then the
-  health refresh the command runs after every write.
-
-Time is the child's wall clock; peak memory is the kernel's account of that child
-(``os.wait4``'s ru_maxrss). The variants run interleaved, so a busy spell on the machine
-hits them alike, and the ratio of each repetition is kept beside the ratio of medians.
-After each run the database's counts and column sums are compared with the floor's, so
-the floor is known to have stored what fleetdb stored.
+Wall time, CPU time (user + system) and peak resident memory come from the kernel's
+account of each child (``os.wait4``). The variants run interleaved, so a busy spell on
+a shared machine hits them alike; each repetition's own ratio is kept beside the ratio
+of medians. After each run the stored counts and column sums are compared with the
+floor's, so the floor is known to have stored what fleetdb stored.
 
 Run by hand (not a test; nothing here asserts a speed)::
 
@@ -41,6 +35,8 @@ import tempfile
 import threading
 import time
 import uuid
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import asdict, dataclass, field
 from datetime import UTC, datetime
 from decimal import Decimal
@@ -59,33 +55,27 @@ FLOOR_CHUNK = 100_000  # reading rows per executemany / COPY while streaming the
 GOAL_RATIO = 1.5
 GOAL_RSS_BYTES = 2 * 1024**3
 PG_ENV = "FLEETDB_BENCH_PG_URL"
+#: key -> (label, what runs). "floor" is the baseline of every ratio.
+VARIANTS: dict[str, tuple[str, str]] = {
+    "floor": ("floor", "csv module + the driver's executemany (SQLite) or COPY (PostgreSQL), "
+              "one transaction, no checks"),
+    "ingest": ("ours: import", "fleetdb.ingest.import_files: read, validate, convert, group, "
+               "write, commit"),
+    "cli": ("ours: CLI", "the 'fleetdb import' command: the same, then the health refresh "
+            "it runs after every write"),
+}
 
 
 @dataclass
 class Measured:
-    """One child process: wall time, peak RSS, exit status."""
+    """One child process: wall and CPU seconds, peak RSS, exit status."""
 
     seconds: float
+    cpu_seconds: float
     peak_rss_bytes: int
     returncode: int
     killed_over_rss: bool = False
-    stdout: str = ""
     stderr: str = ""
-
-
-#: What is measured: key -> label. "floor" is the baseline of every ratio.
-VARIANTS: dict[str, str] = {
-    "floor": "floor",
-    "ingest": "ours: import",
-    "cli": "ours: CLI",
-}
-VARIANT_HELP = {
-    "floor": "csv module + the driver's executemany (SQLite) or COPY (PostgreSQL), one "
-             "transaction, no checks",
-    "ingest": "fleetdb.ingest.import_files: read, validate, convert, group, write, commit",
-    "cli": "the 'fleetdb import' command: the same, then the health refresh it runs after "
-           "every write",
-}
 
 
 @dataclass
@@ -102,12 +92,11 @@ class Variant:
     @property
     def label(self) -> str:
         """The name printed in the table."""
-        return VARIANTS[self.key]
+        return VARIANTS[self.key][0]
 
-    @property
-    def median_seconds(self) -> float | None:
-        """Median wall time over the runs (None when it never completed)."""
-        return statistics.median(r.seconds for r in self.runs) if self.runs else None
+    def median(self, what: str = "seconds") -> float | None:
+        """Median of a :class:`Measured` field over the runs (None if none completed)."""
+        return statistics.median(getattr(r, what) for r in self.runs) if self.runs else None
 
     @property
     def peak_rss_bytes(self) -> int | None:
@@ -118,17 +107,16 @@ class Variant:
 # -- child processes ------------------------------------------------------------------------
 
 def run_measured(cmd: list[str], *, rss_limit_bytes: int | None = None) -> Measured:
-    """Run a command to completion; measure its wall time and peak resident memory.
+    """Run a command to completion; measure its wall time, CPU time and peak memory.
 
     :param cmd: the command and its arguments.
     :param rss_limit_bytes: kill the child if its resident memory goes beyond this (the
         machine is shared: a runaway import must not take it down).
     """
-    with tempfile.TemporaryFile("w+") as out, tempfile.TemporaryFile("w+") as err:
+    with tempfile.TemporaryFile("w+") as err:
         start = time.perf_counter()
-        proc = subprocess.Popen(cmd, stdout=out, stderr=err, cwd=REPO)
-        killed = threading.Event()
-        done = threading.Event()
+        proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=err, cwd=REPO)
+        killed, done = threading.Event(), threading.Event()
         if rss_limit_bytes:
             threading.Thread(target=_rss_guard, args=(proc.pid, rss_limit_bytes, killed, done),
                              daemon=True).start()
@@ -136,11 +124,10 @@ def run_measured(cmd: list[str], *, rss_limit_bytes: int | None = None) -> Measu
         seconds = time.perf_counter() - start
         done.set()
         proc.returncode = os.waitstatus_to_exitcode(status)
-        out.seek(0)
         err.seek(0)
         # ru_maxrss is in kilobytes on Linux.
-        return Measured(seconds, usage.ru_maxrss * 1024, proc.returncode, killed.is_set(),
-                        out.read()[-4000:], err.read()[-4000:])
+        return Measured(seconds, usage.ru_utime + usage.ru_stime, usage.ru_maxrss * 1024,
+                        proc.returncode, killed.is_set(), err.read()[-4000:])
 
 
 def _rss_guard(pid: int, limit: int, killed: threading.Event, done: threading.Event) -> None:
@@ -220,13 +207,16 @@ def load_floor(tests_csv: Path, url: str) -> tuple[int, int]:
     from fleetdb.units import KPA_PER_UNIT
 
     factor = {**KPA_PER_UNIT, "%": 1.0}
-    at = datetime.now(UTC).replace(microsecond=0)
-    sqlite = url.startswith("sqlite")
-    throttle = {"yes": 1, "no": 0} if sqlite else {"yes": True, "no": False}
-    db = _FloorSqlite(url) if sqlite else _FloorPostgres(url)
-    unit_ids = db.unit_ids()
-    batch_id = db.new_batch(tests_csv.name, at)
-    test_id = db.max_test_id()
+    db = _FloorSqlite(url) if url.startswith("sqlite") else _FloorPostgres(url)
+    at = db.time(datetime.now(UTC).replace(microsecond=0))
+    throttle = {"yes": db.true, "no": db.false}
+    unit_ids = dict(db.query("SELECT fleet_no, id FROM unit").fetchall())
+    test_id = db.query("SELECT COALESCE(MAX(id), 0) FROM test").fetchone()[0]
+    batch_id = db.query(
+        "INSERT INTO import_batch (file_name, content_sha256, file_kind, rows_read, "
+        "rows_written, rows_present, outcome, created_at, created_by) "
+        "VALUES (?, ?, 'tests', 0, 0, 0, 'imported', ?, 'bench') RETURNING id",
+        (tests_csv.name, uuid.uuid4().hex, at)).fetchone()[0]
     tests: list[tuple] = []
     readings: list[tuple] = []
     n_tests = n_readings = 0
@@ -261,42 +251,37 @@ def load_floor(tests_csv: Path, url: str) -> tuple[int, int]:
     return n_tests + len(tests), n_readings + len(readings)
 
 
-_TEST_COLUMNS = ("id", "unit_id", "tested_at", "hours", "battery_v", "crank_rpm",
-                 "engine_temp_c", "baro_kpa", "throttle_open", "technician", "note", "source",
-                 "batch_id", "created_at", "created_by")
-_READING_COLUMNS = ("test_id", "kind", "cylinder", "value_si", "typed_value", "typed_unit")
+_COLUMNS = {
+    "test": ("id", "unit_id", "tested_at", "hours", "battery_v", "crank_rpm", "engine_temp_c",
+             "baro_kpa", "throttle_open", "technician", "note", "source", "batch_id",
+             "created_at", "created_by"),
+    "reading": ("test_id", "kind", "cylinder", "value_si", "typed_value", "typed_unit"),
+}
 
 
 class _FloorSqlite:
     """The bare sqlite3 module, with fleetdb's pragmas (WAL, foreign keys, NORMAL sync)."""
+
+    true, false = 1, 0
 
     def __init__(self, url: str):
         self.conn = sqlite3.connect(url.removeprefix("sqlite:///"), isolation_level=None)
         for pragma in ("journal_mode=WAL", "foreign_keys=ON", "synchronous=NORMAL"):
             self.conn.execute(f"PRAGMA {pragma}")
         self.conn.execute("BEGIN IMMEDIATE")
-        self.insert_test = (f"INSERT INTO test ({', '.join(_TEST_COLUMNS)}) VALUES "
-                            f"({', '.join('?' * len(_TEST_COLUMNS))})")
-        self.insert_reading = (f"INSERT INTO reading ({', '.join(_READING_COLUMNS)}) VALUES "
-                               f"({', '.join('?' * len(_READING_COLUMNS))})")
+        self.insert = {table: f"INSERT INTO {table} ({', '.join(cols)}) VALUES "
+                              f"({', '.join('?' * len(cols))})" for table, cols in _COLUMNS.items()}
 
-    def unit_ids(self) -> dict[str, int]:
-        return dict(self.conn.execute("SELECT fleet_no, id FROM unit"))
+    def time(self, moment: datetime) -> str:
+        """A date-time as SQLAlchemy stores it in SQLite."""
+        return moment.strftime("%Y-%m-%d %H:%M:%S.%f")
 
-    def max_test_id(self) -> int:
-        return self.conn.execute("SELECT COALESCE(MAX(id), 0) FROM test").fetchone()[0]
-
-    def new_batch(self, name: str, at: datetime) -> int:
-        return self.conn.execute(
-            "INSERT INTO import_batch (file_name, content_sha256, file_kind, rows_read, "
-            "rows_written, rows_present, outcome, created_at, created_by) "
-            "VALUES (?, ?, 'tests', 0, 0, 0, 'imported', ?, 'bench') RETURNING id",
-            (name, uuid.uuid4().hex, at.strftime("%Y-%m-%d %H:%M:%S.%f"))).fetchone()[0]
+    def query(self, sql: str, params: tuple = ()) -> Any:
+        return self.conn.execute(sql, params)
 
     def write(self, tests: list[tuple], readings: list[tuple]) -> None:
-        stamp = tests[0][13].strftime("%Y-%m-%d %H:%M:%S.%f") if tests else None
-        self.conn.executemany(self.insert_test, [t[:13] + (stamp, t[14]) for t in tests])
-        self.conn.executemany(self.insert_reading, readings)
+        self.conn.executemany(self.insert["test"], tests)
+        self.conn.executemany(self.insert["reading"], readings)
 
     def finish(self) -> None:
         self.conn.execute("COMMIT")
@@ -306,29 +291,23 @@ class _FloorSqlite:
 class _FloorPostgres:
     """Bare psycopg: COPY of each chunk, one transaction."""
 
+    true, false = True, False
+
     def __init__(self, url: str):
         import psycopg
 
         self.conn = psycopg.connect(_libpq_url(url))
 
-    def unit_ids(self) -> dict[str, int]:
-        return dict(self.conn.execute("SELECT fleet_no, id FROM unit").fetchall())
+    def time(self, moment: datetime) -> datetime:
+        return moment
 
-    def max_test_id(self) -> int:
-        return self.conn.execute("SELECT COALESCE(MAX(id), 0) FROM test").fetchone()[0]
-
-    def new_batch(self, name: str, at: datetime) -> int:
-        return self.conn.execute(
-            "INSERT INTO import_batch (file_name, content_sha256, file_kind, rows_read, "
-            "rows_written, rows_present, outcome, created_at, created_by) "
-            "VALUES (%s, %s, 'tests', 0, 0, 0, 'imported', %s, 'bench') RETURNING id",
-            (name, uuid.uuid4().hex, at)).fetchone()[0]
+    def query(self, sql: str, params: tuple = ()) -> Any:
+        return self.conn.execute(sql.replace("?", "%s"), params)
 
     def write(self, tests: list[tuple], readings: list[tuple]) -> None:
         with self.conn.cursor() as cur:
-            for table, columns, rows in (("test", _TEST_COLUMNS, tests),
-                                         ("reading", _READING_COLUMNS, readings)):
-                with cur.copy(f"COPY {table} ({', '.join(columns)}) FROM STDIN") as copy:
+            for table, rows in (("test", tests), ("reading", readings)):
+                with cur.copy(f"COPY {table} ({', '.join(_COLUMNS[table])}) FROM STDIN") as copy:
                     for row in rows:
                         copy.write_row(row)
 
@@ -369,24 +348,51 @@ def fingerprint(url: str) -> list[tuple]:
         conn.close()
 
 
-# -- PostgreSQL scratch databases -----------------------------------------------------------
+def _compare_content(group: list[Variant], counts: dict[str, int]) -> list[str]:
+    """Problems, if a run stored other content than the floor's first run, or not all of it."""
+    floor = group[0]
+    if not floor.stored:
+        return []
+    reference = floor.stored[0]
+    if reference[0][0] != counts["readings"] or reference[1][0] != counts["tests"]:
+        return [f"{floor.backend} floor stored {reference[1][0]} tests and {reference[0][0]} "
+                f"readings; the file holds {counts['tests']} and {counts['readings']}"]
+    problems = []
+    flat_reference = [v for row in reference for v in row]
+    for variant in group:
+        for stored in variant.stored:
+            for got, want in zip([v for row in stored for v in row], flat_reference, strict=True):
+                same = (got is not None and math.isclose(float(got), float(want), rel_tol=1e-9)
+                        if isinstance(want, (int, float, Decimal)) else got == want)
+                if not same:
+                    problems.append(f"{variant.backend} {variant.label} stored other content "
+                                    f"than the floor: {stored} vs {reference}")
+                    break
+    return problems
 
-def _pg_scratch(admin_url: str) -> tuple[str, str]:
-    """Create an empty database beside ``admin_url``'s; return (its URL, its name)."""
+
+@contextmanager
+def _fresh_database(tmp: Path, name: str, pg_admin: str | None) -> Iterator[str]:
+    """An empty database, removed afterwards: a SQLite file, or a PostgreSQL database made
+    beside ``pg_admin``'s."""
+    if not pg_admin:
+        path = tmp / f"{name}.sqlite"
+        try:
+            yield f"sqlite:///{path}"
+        finally:
+            for suffix in ("", "-wal", "-shm"):
+                Path(f"{path}{suffix}").unlink(missing_ok=True)
+        return
     import psycopg
 
-    name = f"fleetdb_bench_{uuid.uuid4().hex[:10]}"
-    with psycopg.connect(_libpq_url(admin_url), autocommit=True) as conn:
-        conn.execute(f'CREATE DATABASE "{name}"')
-    base, _, _ = _libpq_url(admin_url).rpartition("/")
-    return f"{base}/{name}", name
-
-
-def _pg_drop(admin_url: str, name: str) -> None:
-    import psycopg
-
-    with psycopg.connect(_libpq_url(admin_url), autocommit=True) as conn:
-        conn.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
+    db_name = f"fleetdb_bench_{uuid.uuid4().hex[:10]}"
+    with psycopg.connect(_libpq_url(pg_admin), autocommit=True) as conn:
+        conn.execute(f'CREATE DATABASE "{db_name}"')
+    try:
+        yield _libpq_url(pg_admin).rpartition("/")[0] + f"/{db_name}"
+    finally:
+        with psycopg.connect(_libpq_url(pg_admin), autocommit=True) as conn:
+            conn.execute(f'DROP DATABASE IF EXISTS "{db_name}" WITH (FORCE)')
 
 
 # -- the benchmark --------------------------------------------------------------------------
@@ -413,7 +419,6 @@ def run(units: int, repeat: int, *, seed: int = 1, pg_url: str | None = None,
     paths, counts = write_synthetic(data_dir, units, seed)
     generate_s = time.perf_counter() - started
     rows = counts["tests"] + counts["readings"]
-    limit = int(rss_limit_gb * 1024**3)
     load_before = os.getloadavg()
     keys = ["floor"] + [k for k in VARIANTS if k in variants and k != "floor"]
     measured: list[Variant] = []
@@ -425,17 +430,18 @@ def run(units: int, repeat: int, *, seed: int = 1, pg_url: str | None = None,
             for i in range(repeat):
                 for variant in group:  # interleaved, so drift on the machine hits all alike
                     if variant.error is None:
-                        _one_run(variant, i, paths, Path(tmp), admin, limit)
+                        _one_run(variant, i, paths, Path(tmp), admin,
+                                 int(rss_limit_gb * 1024**3))
             problems += [f"{v.backend} {v.label}: {v.error}" for v in group if v.error]
             problems += _compare_content(group, counts)
             measured += group
     result = {
         "benchmark": "import",
         "when": datetime.now(UTC).isoformat(timespec="seconds"),
+        "commit": _git_commit(),
         "machine": {"cpus": os.cpu_count(), "loadavg_before": load_before,
                     "loadavg_after": os.getloadavg(), "python": sys.version.split()[0],
                     "sqlite": sqlite3.sqlite_version},
-        "commit": _git_commit(),
         "data": {**counts, "rows": rows, "generate_or_reuse_seconds": round(generate_s, 1),
                  "tests_csv_bytes": paths["tests"].stat().st_size},
         "repeat": repeat,
@@ -455,15 +461,13 @@ def run(units: int, repeat: int, *, seed: int = 1, pg_url: str | None = None,
 
 
 def _git_commit() -> str:
-    """HEAD of the checkout being measured, with ``+dirty`` when fleetdb/ has local changes."""
+    """HEAD of the checkout measured, with ``+dirty`` when fleetdb/ has local changes."""
     def git(*args: str) -> str:
-        done = subprocess.run(["git", *args], cwd=REPO, capture_output=True, text=True,
-                              check=False)
-        return done.stdout.strip()
+        return subprocess.run(["git", *args], cwd=REPO, capture_output=True, text=True,
+                              check=False).stdout.strip()
 
-    head = git("rev-parse", "--short", "HEAD") or "unknown"
-    return head + ("+dirty" if git("status", "--porcelain", "--", "fleetdb", "migrations")
-                   else "")
+    dirty = git("status", "--porcelain", "--", "fleetdb", "migrations")
+    return (git("rev-parse", "--short", "HEAD") or "unknown") + ("+dirty" if dirty else "")
 
 
 def write_synthetic(folder: Path, units: int, seed: int) -> tuple[dict[str, Path], dict[str, int]]:
@@ -481,96 +485,47 @@ def write_synthetic(folder: Path, units: int, seed: int) -> tuple[dict[str, Path
 def _one_run(variant: Variant, i: int, paths: dict[str, Path], tmp: Path, pg_admin: str | None,
              rss_limit: int) -> None:
     """Fresh database with the fleet loaded, then the measured load of the tests file."""
-    if pg_admin:
-        url, db_name = _pg_scratch(pg_admin)
-    else:
-        url, db_name = f"sqlite:///{tmp / f'{variant.key}-{i}.sqlite'}", None
-    commands = {
-        "floor": [sys.executable, "-m", "tests.bench.bench_import", "--floor",
-                  str(paths["tests"]), url],
-        "ingest": ingest_command(paths["tests"], url),
-        "cli": [*fleetdb_command(), "import", str(paths["tests"]), "--db", url],
-    }
-    try:
+    with _fresh_database(tmp, f"{variant.key}-{i}", pg_admin) as url:
         variant.setup_seconds.append(prepare_database(url, paths["fleet"]))
-        run = run_measured(commands[variant.key], rss_limit_bytes=rss_limit)
+        command = {
+            "floor": [sys.executable, "-m", "tests.bench.bench_import", "--floor",
+                      str(paths["tests"]), url],
+            "ingest": ingest_command(paths["tests"], url),
+            "cli": [*fleetdb_command(), "import", str(paths["tests"]), "--db", url],
+        }[variant.key]
+        run = run_measured(command, rss_limit_bytes=rss_limit)
         try:
             _check(run, f"run {i + 1}")
         except RuntimeError as exc:
             variant.error = str(exc)
+            tail = "\n".join("    " + line for line in run.stderr.strip().splitlines()[-6:])
             print(f"  {variant.backend:10s} {variant.label:12s} run {i + 1}: FAILED after "
-                  f"{run.seconds:.1f} s, peak RSS {run.peak_rss_bytes / 1e6:.0f} MB:\n"
-                  f"{_last_lines(run.stderr)}", flush=True)
+                  f"{run.seconds:.1f} s:\n{tail}", flush=True)
             return
         variant.runs.append(run)
         variant.stored.append(fingerprint(url))
-    finally:
-        if db_name:
-            _pg_drop(pg_admin, db_name)
-        else:
-            for suffix in ("", "-wal", "-shm"):
-                Path(url.removeprefix("sqlite:///") + suffix).unlink(missing_ok=True)
     print(f"  {variant.backend:10s} {variant.label:12s} run {i + 1}: {run.seconds:7.1f} s, "
-          f"peak RSS {run.peak_rss_bytes / 1e6:7.0f} MB", flush=True)
+          f"CPU {run.cpu_seconds:7.1f} s, peak RSS {run.peak_rss_bytes / 1e6:7.0f} MB",
+          flush=True)
 
 
-def _last_lines(text: str, n: int = 6) -> str:
-    return "\n".join("    " + line for line in text.strip().splitlines()[-n:])
-
-
-def _compare_content(group: list[Variant], counts: dict[str, int]) -> list[str]:
-    """Problems, if a run stored other content than the floor's first run, or not all of it."""
-    floor = group[0]
-    if not floor.stored:
-        return []
-    reference = floor.stored[0]
-    if reference[0][0] != counts["readings"] or reference[1][0] != counts["tests"]:
-        return [f"{floor.backend} floor stored {reference[1][0]} tests and {reference[0][0]} "
-                f"readings; the file holds {counts['tests']} and {counts['readings']}"]
-    problems = []
-    for variant in group:
-        for stored in variant.stored:
-            for got, want in zip(_flat(stored), _flat(reference), strict=True):
-                same = (got is not None and math.isclose(float(got), float(want), rel_tol=1e-9)
-                        if isinstance(want, (int, float, Decimal)) else got == want)
-                if not same:
-                    problems.append(f"{variant.backend} {variant.label} stored other content "
-                                    f"than the floor: {stored} vs {reference}")
-                    break
-    return problems
-
-
-def _flat(stored: list[tuple]) -> list[Any]:
-    return [v for row in stored for v in row]
-
-
-def _floor_of(variant: Variant, group: list[Variant]) -> Variant:
-    return next(v for v in group if v.backend == variant.backend and v.key == "floor")
-
-
-def _ratio(variant: Variant, group: list[Variant]) -> float | None:
-    """Median time over the floor's median time."""
-    floor = _floor_of(variant, group)
-    if variant.median_seconds is None or floor.median_seconds is None:
-        return None
-    return variant.median_seconds / floor.median_seconds
-
-
-def _paired_ratios(variant: Variant, group: list[Variant]) -> list[float]:
-    """Time over the floor's time of the same repetition, one per repetition."""
-    floor = _floor_of(variant, group)
-    return [r.seconds / f.seconds for r, f in zip(variant.runs, floor.runs, strict=False)]
+def _ratios(variant: Variant, group: list[Variant], what: str = "seconds") -> dict[str, Any]:
+    """Median over the floor's median, and each repetition over the floor's same one."""
+    floor = next(v for v in group if v.backend == variant.backend and v.key == "floor")
+    mine, base = variant.median(what), floor.median(what)
+    return {"of_medians": mine / base if mine and base else None,
+            "per_run": [getattr(r, what) / getattr(f, what)
+                        for r, f in zip(variant.runs, floor.runs, strict=False)]}
 
 
 def _as_json(variant: Variant, rows: int, group: list[Variant]) -> dict[str, Any]:
-    out = asdict(variant)
-    for run in out["runs"]:
-        run.pop("stdout"), run.pop("stderr")
-    median = variant.median_seconds
-    return {**out, "label": variant.label, "what": VARIANT_HELP[variant.key],
-            "median_seconds": median, "rows_per_second": rows / median if median else None,
-            "peak_rss_bytes": variant.peak_rss_bytes, "ratio_to_floor": _ratio(variant, group),
-            "paired_ratios": _paired_ratios(variant, group)}
+    median = variant.median()
+    return {**asdict(variant), "label": variant.label, "what": VARIANTS[variant.key][1],
+            "median_seconds": median, "median_cpu_seconds": variant.median("cpu_seconds"),
+            "rows_per_second": rows / median if median else None,
+            "peak_rss_bytes": variant.peak_rss_bytes,
+            "ratio_to_floor": _ratios(variant, group),
+            "cpu_ratio_to_floor": _ratios(variant, group, "cpu_seconds")}
 
 
 def _print(result: dict[str, Any], group: list[Variant]) -> None:
@@ -579,32 +534,33 @@ def _print(result: dict[str, Any], group: list[Variant]) -> None:
           f"{data['readings']:,} readings = {data['rows']:,} rows written "
           f"({data['tests_csv_bytes'] / 1e6:.0f} MB of CSV); {result['repeat']} run(s) each, "
           f"load average before {result['machine']['loadavg_before'][0]:.1f}")
-    head = (f"{'backend':10s}  {'variant':12s}  {'median s':>9s}  {'runs s':20s}  "
-            f"{'rows/s':>9s}  {'peak RSS MB':>11s}  {'x floor':>7s}")
-    print(head)
-    print("-" * len(head))
+    head = (f"{'backend':10s}  {'variant':12s}  {'median s':>8s}  {'runs s':20s}  "
+            f"{'rows/s':>9s}  {'CPU s':>7s}  {'peak RSS MB':>11s}  {'x floor':>7s}  "
+            f"{'CPU x floor':>11s}")
+    print(head + "\n" + "-" * len(head))
     for v in group:
         runs = " ".join(f"{r.seconds:.1f}" for r in v.runs) + (" FAILED" if v.error else "")
-        median = v.median_seconds
-        ratio = _ratio(v, group)
-        print(f"{v.backend:10s}  {v.label:12s}  "
-              + (f"{median:9.1f}  {runs:20s}  {data['rows'] / median:9,.0f}  "
-                 f"{v.peak_rss_bytes / 1e6:11,.0f}  "
-                 f"{'' if v.key == 'floor' else f'{ratio:7.2f}'}" if median else
-                 f"{'-':>9s}  {runs:20s}"))
-    for v in group:
-        if v.key == "floor" or v.median_seconds is None:
+        median = v.median()
+        if median is None:
+            print(f"{v.backend:10s}  {v.label:12s}  {'-':>8s}  {runs:20s}")
             continue
-        ratio = _ratio(v, group) or math.nan
-        rss = v.peak_rss_bytes or 0
-        paired = " ".join(f"{r:.2f}" for r in _paired_ratios(v, group))
-        print(f"{v.backend} {v.label}: {ratio:.2f} x floor [per run {paired}] "
-              f"(goal <= {GOAL_RATIO}: "
-              f"{'met' if ratio <= GOAL_RATIO else 'NOT met'}); peak RSS "
-              f"{rss / 1024**3:.2f} GiB (goal < 2 GiB: "
+        ratio, cpu_ratio = _ratios(v, group), _ratios(v, group, "cpu_seconds")
+        print(f"{v.backend:10s}  {v.label:12s}  {median:8.1f}  {runs:20s}  "
+              f"{data['rows'] / median:9,.0f}  {v.median('cpu_seconds'):7.1f}  "
+              f"{v.peak_rss_bytes / 1e6:11,.0f}  "
+              + ("" if v.key == "floor" else
+                 f"{ratio['of_medians']:7.2f}  {cpu_ratio['of_medians']:11.2f}"))
+    for v in group:
+        if v.key == "floor" or v.median() is None:
+            continue
+        ratio, rss = _ratios(v, group), v.peak_rss_bytes or 0
+        per_run = " ".join(f"{r:.2f}" for r in ratio["per_run"])
+        print(f"{v.backend} {v.label}: {ratio['of_medians']:.2f} x floor [per run {per_run}] "
+              f"(goal <= {GOAL_RATIO}: {'met' if ratio['of_medians'] <= GOAL_RATIO else 'NOT met'}"
+              f"); peak RSS {rss / 1024**3:.2f} GiB (goal < 2 GiB: "
               f"{'met' if rss < GOAL_RSS_BYTES else 'NOT met'})")
     for key in dict.fromkeys(v.key for v in group):
-        print(f"  {VARIANTS[key]}: {VARIANT_HELP[key]}")
+        print(f"  {VARIANTS[key][0]}: {VARIANTS[key][1]}")
     for problem in result["problems"]:
         print(f"PROBLEM: {problem.splitlines()[0]}")
 
@@ -646,13 +602,11 @@ def _cli() -> None:
         print(ingest_file(Path(args.ingest[0]), args.ingest[1]))
         return
     chosen = tuple(v.strip() for v in args.variants.split(",") if v.strip())
-    unknown = set(chosen) - set(VARIANTS)
-    if unknown:
-        parser.error(f"unknown variant(s) {', '.join(sorted(unknown))}")
+    if set(chosen) - set(VARIANTS):
+        parser.error(f"unknown variant(s) {', '.join(sorted(set(chosen) - set(VARIANTS)))}")
     n_units = args.units or (SMALL_UNITS if args.small else FULL_UNITS)
-    repeat = args.repeat or (1 if args.small else 3)
-    run(n_units, repeat, seed=args.seed, pg_url=args.pg, data_dir=args.data_dir,
-        rss_limit_gb=args.rss_limit_gb, variants=chosen)
+    run(n_units, args.repeat or (1 if args.small else 3), seed=args.seed, pg_url=args.pg,
+        data_dir=args.data_dir, rss_limit_gb=args.rss_limit_gb, variants=chosen)
 
 
 if __name__ == "__main__":
