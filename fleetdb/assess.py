@@ -257,6 +257,8 @@ def _unit_table(fr: Frames, as_of: pd.Timestamp, fits: pd.DataFrame) -> pd.DataF
 
     def to_date(hours: pd.Series) -> pd.Series:
         weeks = (hours - units["hours_now"]) / units["hours_per_week"]
+        # Beyond a century either way a date means nothing (and overflows timestamps).
+        weeks = weeks.where(weeks.abs() < 52 * 100)
         return (as_of + pd.to_timedelta(weeks * 7, unit="D")).dt.normalize()
 
     units["projected_date"] = to_date(units["projected_hours"])

@@ -128,7 +128,6 @@ class Test(SQLModel, table=True):
         UniqueConstraint("unit_id", "tested_at", "hours", name="uq_test_unit_time_hours"),
         CheckConstraint("hours >= 0", name="hours"),
         CheckConstraint(_in("source", SOURCES), name="source"),
-        Index("ix_test_unit_time", "unit_id", "tested_at"),
     )
     __test__ = False  # not a pytest class
     id: int | None = Field(default=None, primary_key=True)
@@ -162,7 +161,8 @@ class Reading(SQLModel, table=True):
         UniqueConstraint("test_id", "kind", "cylinder", name="uq_reading_test_kind_cylinder"),
     )
     id: int | None = Field(default=None, primary_key=True)
-    test_id: int = Field(foreign_key="test.id", index=True)
+    # No index of its own: the unique (test_id, kind, cylinder) index serves test_id look-ups.
+    test_id: int = Field(foreign_key="test.id")
     kind: str = Field(sa_column=Column(String(20), nullable=False))
     cylinder: int | None = None
     value_si: float
