@@ -82,7 +82,7 @@ KINDS: dict[str, tuple[str, tuple[float, float], int]] = {
     "YT": ("yard tractor", (40.0, 70.0), 182),
     "SW": ("sweeper", (15.0, 30.0), 182),
     "LV": ("light truck", (10.0, 25.0), 182),
-    "GS": ("generator set", (2.0, 8.0), 365),
+    "GS": ("generator set", (2.0, 8.0), 182),
 }
 
 #: Background (plainly sound) units: site, prefix, family, how many.
@@ -121,7 +121,7 @@ class PlantedUnit:
 
 
 PLANTED: tuple[PlantedUnit, ...] = (
-    PlantedUnit("GS-901", "1", SALTGRASS, QUILLAN, 168.0, 730, 4, 91, 150.0),
+    PlantedUnit("GS-901", "1", SALTGRASS, QUILLAN, 168.0, 730, 4, 91, 148.5),
     PlantedUnit("LT-902", "2", SALTGRASS, FENNICK, 40.0, 1800, 5, 182, 141.0),
     PlantedUnit("LV-903", "3a", SALTGRASS, TAVRIN, 20.0, 2900, 12, 182, 142.0),
     PlantedUnit("LV-933", "3b", SALTGRASS, TAVRIN, 22.0, 2700, 16, 182, 142.0),
@@ -130,8 +130,8 @@ PLANTED: tuple[PlantedUnit, ...] = (
     PlantedUnit("LT-955", "5b", FERNCLIFF, FENNICK, 35.0, 1700, 21, 182, 146.0),
     PlantedUnit("LT-906", "6", FERNCLIFF, FENNICK, 45.0, 3300, 25, 182, 160.0),
     PlantedUnit("YT-907", "7", FERNCLIFF, ORSEL, 50.0, 1900, 18, 182, 365.0),
-    PlantedUnit("SW-908", "8", KETTLEROCK, FENNICK, 20.0, 2600, 735, 182, 152.0),
-    PlantedUnit("LT-909", "9", KETTLEROCK, FENNICK, 30.0, 1900, 14, 182, 141.0),
+    PlantedUnit("SW-908", "8", KETTLEROCK, FENNICK, 12.0, 2600, 735, 121, 157.0),
+    PlantedUnit("LT-909", "9", KETTLEROCK, FENNICK, 30.0, 2260, 14, 182, 141.0),
 )
 #: Story 6: the engine's level (sea-level psi) when it was overhauled.
 WORN_BEFORE_OVERHAUL_PSI = 123.0

@@ -9,7 +9,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from demo_fleet import history, model, readings, stories
+from demo_fleet import curation, history, model, readings, stories
 from demo_fleet.catalogue import FAMILIES, SITES
 from demo_fleet.stories import Story
 
@@ -95,6 +95,8 @@ def build(as_of: date | None = None, seed: int = 42) -> DemoFleet:
     history.set_cranking(tests)
     tests["site"] = units.loc[tests["fleet_no"], "site"].to_numpy()
     tests["family"] = units.loc[tests["fleet_no"], "family"].to_numpy()
+    tests["calm"] = tests["is_latest"] & (units["story"].reindex(tests["fleet_no"]) != "10"
+                                          ).to_numpy()
 
     overhaul_offset = stories.overhaul_offset(tests)
     overhaul_no = tests.loc[tests["role"] == "after_overhaul", "fleet_no"].iloc[0]
@@ -104,8 +106,11 @@ def build(as_of: date | None = None, seed: int = 42) -> DemoFleet:
     cylinders = history.draw_cylinders(units, rng)
     stories.fit_wear(cylinders, tests, units, overhaul_hours)
     dry = readings.dry_compression(tests, cylinders, units, stories.defects(tests, units), rng)
-    faulty = units["story"].reindex(tests["fleet_no"]).isin(["2", "3a", "3b"]).to_numpy()
-    readings.settle_latest(dry, tests, ~faulty)
+    story = units["story"].reindex(tests["fleet_no"])
+    faulty = story.isin(["2", "3a", "3b"]).to_numpy()
+    curation.steady_sound_units(dry, tests, units, ~faulty & (story != "1").to_numpy(), ~faulty,
+                                rng)
+    curation.settle_latest(dry, tests, ~faulty)
     stories.copy_twin_values(dry, tests)
     extra = _extra_readings(tests, dry, rng)
     events = stories.events(tests, units, (overhaul_offset, overhaul_hours))

@@ -67,7 +67,7 @@ def draw_units(rng: np.random.Generator) -> pd.DataFrame:
     hpw = np.round(rng.uniform(lo, hi))
     age_days = rng.uniform(2.2, 11.0, n) * 365.25
     level_factor = np.clip(rng.normal(1.0, 0.02, n), 0.96, 1.04)
-    mult = rng.uniform(0.85, 1.15, n)
+    mult = rng.uniform(0.97, 1.03, n)
     util = rng.uniform(0.92, 1.08, n)
     last_offset = rng.integers(0, 200, n)
     shrink = rng.uniform(0.5, 0.95, n)
@@ -240,7 +240,7 @@ def draw_cylinders(units: pd.DataFrame, rng: np.random.Generator, segments: int 
     # Planted units have even cylinders (0.4 x the spread) so their stories read cleanly.
     spread = np.where(unit["story"].to_numpy() == "10", 1.0, 0.4)
     cyl_factor = 1.0 + np.clip(rng.normal(0.0, 0.012, n), -0.025, 0.025) * spread
-    cyl_rate = rng.uniform(0.92, 1.08, n)
+    cyl_rate = rng.uniform(0.98, 1.02, n)
     std_kpa = np.array([FAMILIES[f].standard_kpa for f in unit["family"]])
     fam_rate_kpa = np.array([FAMILIES[f].wear_psi_per_hour for f in unit["family"]]) * PSI_KPA
     return pd.DataFrame({

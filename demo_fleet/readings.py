@@ -10,11 +10,9 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
 from demo_fleet import model
 from demo_fleet.catalogue import FAMILIES, SITES
-from fleetdb import atmosphere
 from fleetdb.units import KPA_PER_UNIT
 
 #: Relative gauge noise: shared by all cylinders of a test, and per cylinder.
@@ -78,22 +76,8 @@ def dry_compression(tests: pd.DataFrame, cylinders: pd.DataFrame, units: pd.Data
     speed = model.cranking_speed_factor(t["crank_rpm"].to_numpy(), t["spark_ignition"].to_numpy())
     condition = model.altitude_factor(t["baro_true"].to_numpy()) * restriction * speed
 
-    # Gauge errors are bounded: no draw beyond 2.5 standard deviations.
-    common = np.clip(rng.normal(0.0, TEST_NOISE, len(tests)), -2.5 * TEST_NOISE, 2.5 * TEST_NOISE)
-    per = np.clip(rng.normal(0.0, READING_NOISE, len(rows)), -2.5 * READING_NOISE,
-                  2.5 * READING_NOISE)
-    # A planted unit's latest test carries at most one standard deviation of noise, so that
-    # its story reads the same whatever the seed.
-    calm = (units["story"] != "10").reindex(tests["fleet_no"]).to_numpy() & tests["is_latest"]
-    common = np.where(calm, np.clip(common, -TEST_NOISE, TEST_NOISE), common)
-    calm_rows = calm.loc[rows["test_id"]].to_numpy()
-    per = np.where(calm_rows, np.clip(per, -READING_NOISE, READING_NOISE), per)
-    noise = 1.0 + pd.Series(common, index=tests.index).loc[rows["test_id"]].to_numpy() + per
-
-    measured = sea_kpa * condition * rows["defect"].to_numpy() * noise
     unit = compression_unit(units.loc[rows["fleet_no"], "site"], family)
-    factor = np.array([KPA_PER_UNIT[u] for u in unit])
-    return pd.DataFrame({
+    dry = pd.DataFrame({
         "test_id": rows["test_id"].to_numpy(),
         "fleet_no": rows["fleet_no"].to_numpy(),
         "cylinder": rows["cylinder"].to_numpy(),
@@ -102,8 +86,44 @@ def dry_compression(tests: pd.DataFrame, cylinders: pd.DataFrame, units: pd.Data
         "ambient_kpa": t["baro_true"].to_numpy(),
         "condition_factor": condition * rows["defect"].to_numpy(),
         "units": unit,
-        "value": typed(measured / factor, unit),
+        "kpa_per_unit": np.array([KPA_PER_UNIT[u] for u in unit]),
     })
+    dry["noise"] = draw_noise(dry, tests, rng)
+    set_values(dry)
+    return dry
+
+
+def draw_noise(dry: pd.DataFrame, tests: pd.DataFrame, rng: np.random.Generator) -> np.ndarray:
+    """Relative gauge error of each reading: a part per test plus a part per reading.
+
+    Gauge errors are bounded: no draw beyond 2.5 standard deviations. Tests marked ``calm``
+    (a planted unit's latest test) carry at most one standard deviation, so that the story
+    reads the same whatever the seed.
+
+    :param dry: the readings to draw for (their tests must all be in ``tests``).
+    :param tests: the tests to draw for, with ``calm``.
+    :param rng: the demo's random generator.
+    """
+    calm = tests["calm"].to_numpy()
+    common = np.clip(rng.normal(0.0, TEST_NOISE, len(tests)),
+                     -np.where(calm, 1.0, 2.5) * TEST_NOISE, np.where(calm, 1.0, 2.5) * TEST_NOISE)
+    calm_rows = tests["calm"].loc[dry["test_id"]].to_numpy()
+    bound = np.where(calm_rows, 1.0, 2.5) * READING_NOISE
+    per = np.clip(rng.normal(0.0, READING_NOISE, len(dry)), -bound, bound)
+    return pd.Series(common, index=tests.index).loc[dry["test_id"]].to_numpy() + per
+
+
+def set_values(dry: pd.DataFrame, rows: np.ndarray | None = None) -> None:
+    """Typed value = true reading x (1 + noise), in the site's unit, rounded as typed.
+
+    :param dry: readings with ``sea_level_kpa``, ``condition_factor``, ``noise`` (modified).
+    :param rows: boolean mask of the rows to set (None: all).
+    """
+    rows = np.ones(len(dry), bool) if rows is None else rows
+    part = dry[rows]
+    measured = part["sea_level_kpa"] * part["condition_factor"] * (1.0 + part["noise"])
+    dry.loc[rows, "value"] = typed((measured / part["kpa_per_unit"]).to_numpy(),
+                                   part["units"].to_numpy())
 
 
 def test_valid(tests: pd.DataFrame) -> np.ndarray:
@@ -117,60 +137,3 @@ def test_valid(tests: pd.DataFrame) -> np.ndarray:
                & (typed(tests["vac_true_inhg"].fillna(0.0).to_numpy(),
                         np.full(len(tests), "inHg")) > MAX_OPEN_THROTTLE_VAC_INHG))
     return (tests["battery_v"].to_numpy() >= MIN_BATTERY_V) & rpm_ok & vac_ok
-
-
-def settle_latest(dry: pd.DataFrame, tests: pd.DataFrame, eligible: np.ndarray) -> None:
-    """Keep sound units' latest valid readings inside their own trend (demo curation).
-
-    For each eligible (unit, cylinder) series of the current engine life with at least three
-    earlier valid tests, a latest reading below the lower bound of the two-sided 95 %
-    prediction interval of the earlier straight-line fit (domain.md D11, §6.1) would read as
-    a sudden drop. Such a reading is raised to the fitted value (rounded up in its unit).
-
-    :param dry: from :func:`dry_compression` (``value`` modified in place).
-    :param tests: the test table (index = test id).
-    :param eligible: per test, whether its unit takes part.
-    """
-    valid = pd.Series(test_valid(tests) & eligible, index=tests.index)
-    current = tests["segment"] == tests.groupby("fleet_no")["segment"].transform("max")
-    usable = (valid & current)
-    last_valid = tests[usable].groupby("fleet_no")["seq"].transform("max")
-    is_last = pd.Series(False, index=tests.index)
-    is_last.loc[last_valid.index] = tests.loc[last_valid.index, "seq"] == last_valid
-
-    t = tests.loc[dry["test_id"]]
-    baro = t["baro_kpa"].fillna(pd.Series(atmosphere.pressure_kpa(
-        [SITES[s].elevation_m for s in t["site"]]), index=t.index)).to_numpy()
-    factor = np.array([KPA_PER_UNIT[u] for u in dry["units"]])
-    frame = pd.DataFrame({
-        "key": dry["fleet_no"] + "#" + dry["cylinder"].astype(str),
-        "x": t["hours"].to_numpy(),
-        "y": dry["value"].to_numpy() * factor * atmosphere.P0_KPA / baro,
-        "fit": usable.loc[dry["test_id"]].to_numpy() & ~is_last.loc[dry["test_id"]].to_numpy(),
-        "last": is_last.loc[dry["test_id"]].to_numpy(),
-    }, index=dry.index)
-    fit = frame[frame["fit"]].assign(xx=lambda f: f.x**2, xy=lambda f: f.x * f.y,
-                                     yy=lambda f: f.y**2)
-    sums = fit.groupby("key")[["x", "y", "xx", "xy", "yy"]].sum()
-    n = fit.groupby("key").size()
-    sums = sums[n >= 3]
-    n = n[n >= 3]
-    sxx = sums["xx"] - sums["x"] ** 2 / n
-    sxy = sums["xy"] - sums["x"] * sums["y"] / n
-    syy = sums["yy"] - sums["y"] ** 2 / n
-    slope = sxy / sxx.where(sxx > 0)
-    xbar, ybar = sums["x"] / n, sums["y"] / n
-    s = np.sqrt(np.maximum(syy - slope * sxy, 0.0) / np.maximum(n - 2, 1))
-    last = frame[frame["last"]].join(pd.DataFrame({"slope": slope, "xbar": xbar, "ybar": ybar,
-                                                    "s": s, "n": n, "sxx": sxx}), on="key",
-                                     how="inner").dropna()
-    predicted = last["ybar"] + last["slope"] * (last["x"] - last["xbar"])
-    half = stats.t.ppf(0.975, last["n"] - 2) * last["s"] * np.sqrt(
-        1.0 + 1.0 / last["n"] + (last["x"] - last["xbar"]) ** 2 / last["sxx"])
-    low = last.index[(last["y"] < predicted - half).to_numpy()]
-    if len(low) == 0:
-        return
-    raw = predicted.loc[low] * baro[dry.index.get_indexer(low)] / atmosphere.P0_KPA
-    step = np.array([STEP[u] for u in dry.loc[low, "units"]])
-    unit_value = raw.to_numpy() / factor[dry.index.get_indexer(low)]
-    dry.loc[low, "value"] = np.round(np.ceil(unit_value / step) * step, 1)

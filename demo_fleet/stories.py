@@ -79,8 +79,8 @@ def mark_roles(tests: pd.DataFrame, units: pd.DataFrame) -> None:
     tests.loc[tests["is_latest"] & (story != "10"), "role"] = "latest"
     tests.loc[(story == "4") & (seq == n - 2), "role"] = "restriction"
     tests.loc[(story == "5b") & (seq == n // 2), "role"] = "weak"
-    tests.loc[(story == "6") & (seq == n - 3), "role"] = "after_overhaul"
-    tests.loc[(story == "6") & (seq >= n - 3), "segment"] = 1
+    tests.loc[(story == "6") & (seq == n - 4), "role"] = "after_overhaul"
+    tests.loc[(story == "6") & (seq >= n - 4), "segment"] = 1
     tests.loc[(story == "7") & (seq % 2 == 1), "role"] = "idle"
 
 
@@ -272,8 +272,8 @@ def records(tests: pd.DataFrame, units: pd.DataFrame) -> list[Story]:
               "worn to the limit, overhauled; compression back to new after the overhaul"),
         Story(no("7"), "7", "sound", (), ("all_low_restriction",),
               "diesel: no throttle, idle vacuum near zero; nothing to flag"),
-        Story(no("8"), "8", "retest", ("test_overdue",), ("below_minimum",),
-              "not tested for about two years"),
+        Story(no("8"), "8", "retest", ("test_overdue",), ("below_minimum", "projected_limit"),
+              "lightly used sweeper not tested for about two years; healthy then"),
         Story(no("9"), "9", "sound", (), ("below_minimum", "projected_limit"),
               "1,705 m site: raw readings under the minimum, healthy at sea-level equivalent"),
     ]
