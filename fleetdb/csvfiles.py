@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import csv
 import hashlib
 import io
 from dataclasses import dataclass
@@ -110,6 +111,12 @@ def parse_csv_bytes(raw: bytes, name: str) -> CsvFile:
                             encoding="utf-8-sig")
     except (pd.errors.ParserError, ValueError) as exc:
         raise InvalidInput([Problem(name, None, None, f"not a readable CSV: {exc}")]) from exc
+    if not isinstance(frame.index, pd.RangeIndex):
+        # pandas takes the leading cells of rows longer than the header as an index: the
+        # columns would shift, or a cell without a column would be lost.
+        raise InvalidInput([Problem(name, _first_long_line(raw, frame.shape[1]), None,
+            f"more cells than the header's {frame.shape[1]} columns (a comma too many at "
+            "the end of the line?)")])
     frame.columns = [str(c).strip().lower() for c in frame.columns]
     kind = detect_kind(list(frame.columns), name)
     for col in frame.columns:
@@ -122,3 +129,17 @@ def parse_csv_bytes(raw: bytes, name: str) -> CsvFile:
     if blank.any():
         frame = frame[~blank]
     return CsvFile(name=name, kind=kind, frame=frame, sha256=digest)
+
+
+def _first_long_line(raw: bytes, columns: int) -> int | None:
+    """The line number of the first record with more cells than ``columns``."""
+    text = raw.decode("utf-8-sig")
+    reader = csv.reader(io.StringIO(text, newline=""), skipinitialspace=True)
+    try:
+        next(reader, None)
+        for record in reader:
+            if len(record) > columns:
+                return reader.line_num
+    except csv.Error:
+        return None
+    return None

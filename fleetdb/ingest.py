@@ -23,10 +23,15 @@ from sqlalchemy.exc import IntegrityError
 
 from fleetdb import atmosphere, validate
 from fleetdb.csvfiles import KIND_ORDER, CsvFile, read_csv
-from fleetdb.errors import InvalidInput
+from fleetdb.errors import InvalidInput, Problem
+from fleetdb.models import ImportBatch
 
 Progress = Callable[[int, int], None]  # (done, total)
 CHUNK = 50_000
+#: PostgreSQL advisory lock that makes imports take turns (any fixed number).
+IMPORT_LOCK_KEY = 0x666C6565  # 'flee'
+#: Longest author name the store keeps (``created_by``).
+BY_MAX: int = ImportBatch.__table__.c.created_by.type.length
 
 
 @dataclass
@@ -39,7 +44,7 @@ class ImportReport:
     written: dict[str, int] = field(default_factory=dict)
     present: int = 0
     batch_id: int | None = None
-    outcome: str = "imported"  # imported | already_imported | dry_run
+    outcome: str = "imported"  # imported | already_imported | dry_run | present (only_new)
     unit_ids: list[int] = field(default_factory=list)
     test_ids: list[int] = field(default_factory=list)
 
@@ -199,9 +204,17 @@ def import_files(engine: Engine, paths: Iterable[Path], *, dry_run: bool = False
 
 
 def import_csv(engine: Engine, csv: CsvFile, *, dry_run: bool = False, by: str | None = None,
-               progress: Progress | None = None, source: str = "csv") -> ImportReport:
-    """Validate and write one parsed file in one transaction (see :func:`import_files`)."""
+               progress: Progress | None = None, source: str = "csv",
+               only_new: bool = False) -> ImportReport:
+    """Validate and write one parsed file in one transaction (see :func:`import_files`).
+
+    :param only_new: write nothing at all (not even the batch) when any of its rows is
+        already in the store; the report's outcome is then ``present``.
+    """
     by = by or current_user()
+    if len(by) > BY_MAX:
+        raise InvalidInput([Problem(csv.name, None, "by", f"the author's name has {len(by)} "
+                                    f"characters; at most {BY_MAX} are kept")])
     report = ImportReport(source=csv.name, kind=csv.kind, rows_read=len(csv.frame))
     with engine.connect() as conn:  # one transaction; leaving without commit rolls back
         previous = conn.execute(text("SELECT id FROM import_batch WHERE content_sha256 = :h"),
@@ -224,6 +237,10 @@ def import_csv(engine: Engine, csv: CsvFile, *, dry_run: bool = False, by: str |
                 {"h": csv.sha256}).scalar()
             report.outcome = "already_imported"
             return report
+        if conn.dialect.name == "postgresql":
+            # Writers take turns, as SQLite's write lock makes them: the rows already in
+            # the store are read after this point, and primary keys are reserved in order.
+            conn.execute(text("SELECT pg_advisory_xact_lock(:key)"), {"key": IMPORT_LOCK_KEY})
         from fleetdb.registry import import_fleet
 
         writer = {"fleet": import_fleet, "tests": _import_tests, "events": _import_events}
@@ -232,8 +249,8 @@ def import_csv(engine: Engine, csv: CsvFile, *, dry_run: bool = False, by: str |
         conn.execute(text("UPDATE import_batch SET rows_written = :w, rows_present = :p, "
                           "outcome = 'imported' WHERE id = :id"),
                      {"w": sum(report.written.values()), "p": report.present, "id": batch_id})
-        if dry_run:
-            report.outcome = "dry_run"
+        if dry_run or (only_new and report.present):
+            report.outcome = "present" if only_new and report.present else "dry_run"
             conn.rollback()
         else:
             report.batch_id = batch_id

@@ -52,24 +52,36 @@ def log_test(engine: Engine, fleet_no: str, tested_at: datetime | str, hours: fl
     unknown = set(conditions) - set(TESTS_OPTIONAL)
     if unknown:
         raise InvalidInput([Problem(source_name, None, k, "not a test condition") for k in unknown])
+    # PostgreSQL text cannot hold NUL; an import file with one is refused whole (csvfiles).
+    texts = [("fleet_no", fleet_no), ("tested_at", tested_at), ("hours", hours), ("by", by),
+             *conditions.items(), *(("value", f"{r.kind}{r.value}{r.units}") for r in readings)]
+    nul = sorted({name for name, value in texts if "\x00" in str(value or "")})
+    if nul:
+        raise InvalidInput([Problem(source_name, None, name, "holds a NUL character, which "
+                                    "cannot be stored") for name in nul])
     when = tested_at.isoformat(sep=" ") if isinstance(tested_at, datetime) else str(tested_at)
     rows = [{"fleet_no": fleet_no.strip(), "tested_at": when.strip(), "hours": str(hours).strip(),
-             "kind": r.kind, "cylinder": "" if r.cylinder is None else str(r.cylinder),
-             "value": str(r.value).strip(), "units": r.units.strip(), **conditions}
+             "kind": _typed(r.kind), "cylinder": "" if r.cylinder is None else str(r.cylinder),
+             "value": _typed(r.value), "units": _typed(r.units), **conditions}
             for r in readings]
     columns = [*TESTS_REQUIRED, *TESTS_OPTIONAL]
     frame = pd.DataFrame([[row.get(c, "") for c in columns] for row in rows], columns=columns)
     frame.index = pd.RangeIndex(1, 1 + len(frame))
     digest = hashlib.sha256(frame.to_csv().encode() + (by or "").encode()).hexdigest()
     csv = CsvFile(name=source_name, kind="tests", frame=frame, sha256=digest)
-    report = import_csv(engine, csv, dry_run=dry_run, by=by, source=source)
+    report = import_csv(engine, csv, dry_run=dry_run, by=by, source=source, only_new=True)
     if report.outcome == "dry_run":
         return None
-    if report.outcome == "already_imported" or report.present:
+    if report.outcome in ("already_imported", "present"):
         raise InvalidInput([Problem(source_name, None, "tested_at",
                                     f"unit {fleet_no} already has a test at {when} with "
                                     f"{hours} h; nothing written")])
     return report.test_ids[0]
+
+
+def _typed(value: object) -> str:
+    """A typed value as stripped text; nothing typed (None) is blank."""
+    return "" if value is None else str(value).strip()
 
 
 def void_test(engine: Engine, test_id: int, reason: str, by: str | None = None) -> None:

@@ -14,7 +14,18 @@ import numpy as np
 import pandas as pd
 
 from fleetdb.errors import Problem
-from fleetdb.models import CYLINDER_KINDS, EVENT_KINDS, READING_KINDS, VACUUM_KINDS
+from fleetdb.models import (
+    CYLINDER_KINDS,
+    EVENT_KINDS,
+    READING_KINDS,
+    VACUUM_KINDS,
+    EngineFamily,
+    Reading,
+    ServiceEvent,
+    Site,
+    Test,
+    Unit,
+)
 from fleetdb.units import _ALIASES, KPA_PER_UNIT
 
 MAX_LINES_PER_PROBLEM = 20
@@ -36,6 +47,16 @@ PRESSURE_UNITS_BY_KIND: dict[str, tuple[str, ...]] = {
     "leakdown": ("%",),
     "relative": ("%",),
 }
+#: Longest text the store keeps, from the column types in fleetdb.models.
+_TYPED_VALUE_MAX = Reading.__table__.c.typed_value.type.length
+_TECHNICIAN_MAX = Test.__table__.c.technician.type.length
+_NOTE_MAX = Test.__table__.c.note.type.length
+_EVENT_NOTE_MAX = ServiceEvent.__table__.c.note.type.length
+_NAME_MAX = {"fleet_no": Unit.__table__.c.fleet_no.type.length,
+             "site": Site.__table__.c.name.type.length,
+             "engine_family": EngineFamily.__table__.c.name.type.length}
+#: Earliest date accepted anywhere (tests, events, in-service dates).
+EARLIEST_DATE = pd.Timestamp("1900-01-01")
 _YES = {"yes", "y", "true", "1", "open", "wot"}
 _NO = {"no", "n", "false", "0", "closed", "shut"}
 
@@ -124,17 +145,24 @@ def timestamp(frame: pd.DataFrame, col: str, problems: Problems, *, required: bo
     """Parse ISO 8601 dates or date-times (``2025-03-01`` or ``2025-03-01 08:30``)."""
     text = frame[col] if col in frame else pd.Series("", index=frame.index)
     blank = text == ""
-    parsed = pd.to_datetime(text.where(~blank, None), format="ISO8601", errors="coerce")
-    if getattr(parsed.dt, "tz", None) is not None:
-        parsed = parsed.dt.tz_convert(None)
+    # utc=True: times with an offset become UTC, the others stay as typed, and a file that
+    # mixes both (or several offsets) parses instead of raising.
+    parsed = pd.to_datetime(text.where(~blank, None), format="ISO8601", errors="coerce",
+                            utc=True).dt.tz_convert(None)
     bad = ~blank & parsed.isna()
     problems.add(bad, col, lambda line: f"{text[line]!r} is not a date; write it as "
                                         "YYYY-MM-DD or YYYY-MM-DD HH:MM")
     if required:
         problems.add(blank, col, "blank; expected a date such as 2025-03-01")
+    # Before 1900 is a typo for an engine test, and year 0 or earlier ("-0" parses so) is
+    # no date Python can hold at all.
+    early = parsed < EARLIEST_DATE
+    problems.add(early, col, lambda line: f"{text[line]!r} is before "
+                                          f"{EARLIEST_DATE:%Y-%m-%d}; check the year")
     if latest is not None:
         future = parsed > latest
         problems.add(future, col, lambda line: f"{text[line]} is in the future")
+    parsed = parsed.where(~early)
     return parsed.astype("datetime64[us]")
 
 
@@ -203,18 +231,22 @@ def tests_rows(frame: pd.DataFrame, units: pd.DataFrame, problems: Problems,
     cyl_num = pd.to_numeric(cyl_text.where(cyl_text != "", None), errors="coerce")
     per_cyl = kind.isin(CYLINDER_KINDS)
     is_vac = kind.isin(VACUUM_KINDS)
-    not_int = (cyl_text != "") & (cyl_num.isna() | (cyl_num != cyl_num.round()))
+    not_int = (cyl_text != "") & (cyl_num.isna() | ~np.isfinite(cyl_num.fillna(0.0))
+                                  | (cyl_num != cyl_num.round()))
     problems.add(not_int, "cylinder", lambda line: f"{cyl_text[line]!r} is not a cylinder number")
     problems.add(per_cyl & (cyl_text == ""), "cylinder",
                  lambda line: f"blank; a {kind[line]} reading needs its cylinder number")
     problems.add(is_vac & (cyl_text != ""), "cylinder",
                  "vacuum is measured for the whole engine: leave the cylinder blank")
     count = ref["cylinders"].to_numpy()
-    beyond = per_cyl & ~not_int & cyl_num.notna() & ((cyl_num < 1) | (cyl_num > count))
+    beyond = (per_cyl & ~not_int & cyl_num.notna() & known
+              & ((cyl_num < 1) | (cyl_num > count)))
     problems.add(beyond, "cylinder",
                  lambda line: f"cylinder {cyl_text[line]} on a "
                               f"{int(units.at[fleet_no[line], 'cylinders'])}-cylinder engine")
-    out["cylinder"] = cyl_num.where(per_cyl & ~not_int & ~beyond).astype("Int64")
+    # Only numbers within the engine's cylinders (an unknown unit has none) become integers.
+    in_range = per_cyl & ~not_int & (cyl_num >= 1) & (cyl_num <= count)
+    out["cylinder"] = cyl_num.where(in_range).astype("Int64")
 
     # Unit must suit the kind.
     wrong_unit = kind.notna() & unit.notna() & ~pd.Series(_unit_fits(kind, unit),
@@ -248,7 +280,19 @@ def tests_rows(frame: pd.DataFrame, units: pd.DataFrame, problems: Problems,
     out["throttle_open"] = yes_no(frame, "throttle_open", problems)
     for col in ("technician", "note"):
         out[col] = frame[col].where(frame[col] != "", None) if col in frame else None
+    for col, limit in (("value", _TYPED_VALUE_MAX), ("technician", _TECHNICIAN_MAX),
+                       ("note", _NOTE_MAX)):
+        too_long(frame, col, limit, problems)
     return out
+
+
+def too_long(frame: pd.DataFrame, col: str, limit: int, problems: Problems) -> None:
+    """Flag cells of ``col`` longer than the store keeps (``limit`` characters)."""
+    if col not in frame:
+        return
+    lengths = frame[col].str.len()
+    problems.add(lengths > limit, col, lambda line: f"{lengths[line]} characters; at most "
+                                                    f"{limit} are kept")
 
 
 def _unit_fits(kind: pd.Series, unit: pd.Series) -> np.ndarray:
@@ -305,7 +349,7 @@ def event_rows(frame: pd.DataFrame, units: pd.DataFrame, problems: Problems,
     cyl_lists: list[str] = []
     for line, text, count in zip(frame.index, frame["cylinders"], ref["cylinders"], strict=True):
         parts = [p.strip() for p in text.replace(",", ";").split(";") if p.strip()]
-        if not all(p.isdigit() for p in parts):
+        if not all(p.isascii() and p.isdigit() for p in parts):
             problems.one(int(line), "cylinders", f"{text!r}: write cylinder numbers like 2;3, "
                                                   "or leave blank for all")
             cyl_lists.append("")
@@ -317,6 +361,7 @@ def event_rows(frame: pd.DataFrame, units: pd.DataFrame, problems: Problems,
         cyl_lists.append(";".join(str(n) for n in nums))
     out["cylinders"] = cyl_lists
     out["note"] = frame["note"].where(frame["note"] != "", None) if "note" in frame else None
+    too_long(frame, "note", _EVENT_NOTE_MAX, problems)
     return out
 
 
@@ -336,7 +381,7 @@ def parse_banks(text: str, cylinders: int) -> list[list[int]]:
     banks = []
     for part in text.split("/"):
         items = [p.strip() for p in part.split("-")]
-        if not items or not all(i.isdigit() for i in items):
+        if not items or not all(i.isascii() and i.isdigit() for i in items):
             raise ValueError(f"{text!r}: write the cylinders of each bank front to back, "
                              "like 1-2-3-4, banks split by / like 1-3-5/2-4-6")
         banks.append([int(i) for i in items])
@@ -364,6 +409,7 @@ def fleet_rows(frame: pd.DataFrame, problems: Problems) -> pd.DataFrame:
     out = pd.DataFrame(index=frame.index)
     for col in ("fleet_no", "site", "engine_family"):
         problems.add(frame[col] == "", col, f"blank; every unit needs its {col}")
+        too_long(frame, col, _NAME_MAX[col], problems)
         out[col] = frame[col]
     dup = (frame["fleet_no"] != "") & frame["fleet_no"].duplicated(keep="first")
     problems.add(dup, "fleet_no", lambda line: f"fleet number {frame['fleet_no'][line]!r} "
