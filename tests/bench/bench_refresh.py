@@ -1,0 +1,104 @@
+"""Benchmark: a full fleet health refresh against a plain read-and-fit baseline.
+
+Baseline (same run, same store): read the dry compression readings with the sqlite3
+module's fetchall into a DataFrame, then a closed-form numpy OLS per cylinder series. Ours:
+``fleetdb.health.refresh_fleet`` (read, checks, steps, OLS, Theil-Sen, pooling,
+projections, levels, snapshot). Each runs in its own child process; we report median wall
+time, peak memory and the ratio. Goals: ours no slower than the baseline, peak under 2 GB.
+
+    python -m tests.bench.bench_refresh [--small] [--units N] [--repeat R]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import statistics
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+from tests.bench.bench_import import (
+    ingest_command,
+    prepare_database,
+    run_measured,
+    write_synthetic,
+)
+
+OUT = Path(__file__).parent / "out"
+BASELINE_SQL = ("SELECT t.unit_id, r.cylinder, t.hours, r.value_si FROM reading r "
+                "JOIN test t ON t.id = r.test_id WHERE r.kind = 'compression'")
+
+
+def _baseline(path: str) -> None:
+    import sqlite3
+
+    import numpy as np
+    import pandas as pd
+
+    rows = sqlite3.connect(path).execute(BASELINE_SQL).fetchall()
+    df = pd.DataFrame(rows, columns=["unit_id", "cylinder", "x", "y"])
+    codes, keys = pd.factorize(df["unit_id"].to_numpy() * 100 + df["cylinder"].to_numpy())
+    x, y, g = df["x"].to_numpy(float), df["y"].to_numpy(float), len(keys)
+    n = np.bincount(codes, minlength=g)
+    dx = x - (np.bincount(codes, x, g) / n)[codes]
+    dy = y - (np.bincount(codes, y, g) / n)[codes]
+    slope = np.bincount(codes, dx * dy, g) / np.bincount(codes, dx * dx, g)
+    print(json.dumps({"series": g, "finite_slopes": int(np.isfinite(slope).sum())}))
+
+
+def _ours(path: str) -> None:
+    from fleetdb import db, health
+
+    print(json.dumps(health.refresh_fleet(db.make_engine(f"sqlite:///{path}"))))
+
+
+def main(small: bool = False, units: int | None = None, repeat: int | None = None) -> None:
+    """Build (or reuse) the synthetic store, then time baseline and refresh, interleaved."""
+    units = units or (300 if small else 20_000)
+    repeat = repeat or (1 if small else 3)
+    data = OUT / "data" / f"synth-{units}u-seed1"
+    paths, counts = write_synthetic(data, units, 1)
+    with tempfile.TemporaryDirectory() as tmp:
+        db_path = str(Path(tmp) / "refresh.sqlite")
+        prepare_database(db_path, paths["fleet"])
+        run_measured(ingest_command(paths["tests"], db_path))
+        results: dict[str, list] = {"baseline": [], "ours": []}
+        for _ in range(repeat):
+            for name in results:
+                m = run_measured([sys.executable, "-m", "tests.bench.bench_refresh",
+                                  f"--{name}", db_path])
+                if m.returncode != 0:
+                    raise SystemExit(f"{name} failed")
+                results[name].append((m.seconds, m.peak_rss_bytes))
+    base = statistics.median(s for s, _ in results["baseline"])
+    ours = statistics.median(s for s, _ in results["ours"])
+    table = {name: {"median_s": round(statistics.median(s for s, _ in runs), 2),
+                    "peak_mb": max(r for _, r in runs) // 2**20}
+             for name, runs in results.items()}
+    print(f"refresh benchmark: {units} units, {counts.get('readings')} readings, {repeat} run(s)")
+    print(f"{'':10}{'median s':>10}{'peak MB':>10}")
+    for name, row in table.items():
+        print(f"{name:10}{row['median_s']:>10}{row['peak_mb']:>10}")
+    print(f"ratio ours/baseline: {ours / base:.2f}  (goal <= 1.00; peak goal < 2048 MB)")
+    OUT.mkdir(exist_ok=True)
+    stamp = time.strftime("%Y%m%dT%H%M%SZ", time.gmtime())
+    (OUT / f"refresh-{units}u-{stamp}.json").write_text(json.dumps(
+        {"units": units, "counts": counts, "results": table, "ratio": ours / base}, indent=1))
+
+
+if __name__ == "__main__":
+    parser = argparse.ArgumentParser(description=__doc__)
+    parser.add_argument("--small", action="store_true")
+    parser.add_argument("--units", type=int)
+    parser.add_argument("--repeat", type=int)
+    parser.add_argument("--baseline", metavar="DB")
+    parser.add_argument("--ours", metavar="DB")
+    args = parser.parse_args()
+    if args.baseline:
+        _baseline(args.baseline)
+    elif args.ours:
+        _ours(args.ours)
+    else:
+        main(args.small, args.units, args.repeat)
