@@ -20,6 +20,7 @@ PostgreSQL stores are backed up with PostgreSQL's own tools (``pg_dump`` and
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import os
 import sqlite3
@@ -171,10 +172,10 @@ def backup(url: str, target: Path, *, force: bool = False) -> BackupInfo:
         raise BackupError(f"{target} is a folder; name the backup file")
     if target.exists() and not force:
         raise BackupError(f"{target} exists; use --force to replace it")
-    target.parent.mkdir(parents=True, exist_ok=True)
     partial = target.with_name(f".{target.name}.partial-{os.getpid()}")
-    partial.unlink(missing_ok=True)
     try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        partial.unlink(missing_ok=True)
         src = _connect(source, read_only=False)
         try:
             dst = sqlite3.connect(partial, isolation_level=None)
@@ -196,10 +197,11 @@ def backup(url: str, target: Path, *, force: bool = False) -> BackupInfo:
         _fsync(partial)
         os.replace(partial, target)
         _fsync(target.parent)
-    except sqlite3.Error as exc:
+    except (sqlite3.Error, OSError) as exc:
         raise BackupError(f"backup of {source} failed: {exc}") from exc
     finally:
-        partial.unlink(missing_ok=True)
+        with contextlib.suppress(OSError):
+            partial.unlink(missing_ok=True)
     return BackupInfo(target, revision, counts, target.stat().st_size, _sha256(target))
 
 
@@ -212,9 +214,13 @@ def inspect_backup(path: Path) -> BackupInfo:
     path = Path(path).expanduser().resolve()
     if not path.is_file():
         raise BackupError(f"no backup file at {path}")
-    with path.open("rb") as handle:
-        if handle.read(len(SQLITE_HEADER)) != SQLITE_HEADER:
-            raise BackupError(f"{path} is not a SQLite database file")
+    try:
+        with path.open("rb") as handle:
+            head = handle.read(len(SQLITE_HEADER))
+    except OSError as exc:
+        raise BackupError(f"cannot read {path}: {exc.strerror}") from exc
+    if head != SQLITE_HEADER:
+        raise BackupError(f"{path} is not a SQLite database file")
     try:
         conn = _connect(path, read_only=True)
         try:
@@ -262,8 +268,8 @@ def restore(backup_file: Path, url: str, *, force: bool = False) -> BackupInfo:
         raise BackupError("the backup file is the database itself")
     if target.is_dir():
         raise BackupError(f"{target} is a folder, not a database file")
-    target.parent.mkdir(parents=True, exist_ok=True)
     try:
+        target.parent.mkdir(parents=True, exist_ok=True)
         if target.exists():
             with target.open("rb") as handle:
                 head = handle.read(len(SQLITE_HEADER))
@@ -287,7 +293,7 @@ def restore(backup_file: Path, url: str, *, force: bool = False) -> BackupInfo:
             counts, revision = _counts(dst, tables), _revision(dst, tables)
         finally:
             dst.close()
-    except sqlite3.Error as exc:
+    except (sqlite3.Error, OSError) as exc:
         raise BackupError(f"restore into {target} failed: {exc}") from exc
     if problems or counts != info.counts or revision != info.revision:
         raise BackupError(f"{target} after the restore does not match the backup: "

@@ -179,6 +179,9 @@ def test_backup_refuses_to_overwrite_unless_forced(store: str, tmp_path: Path) -
     assert "no database file" in run(backup_command, [str(target), "--db", str(missing),
                                                       "--force"], code=1)
     assert not missing.exists()  # a backup never creates the store it was asked to copy
+    under_a_file = target / "x.sqlite"  # a folder that cannot be made: an error, not a trace
+    assert "failed" in run(backup_command, [str(under_a_file), "--db", store], code=1)
+    assert "failed" in run(restore_command, [str(target), "--db", str(under_a_file)], code=1)
     assert [p.name for p in tmp_path.iterdir() if "partial" in p.name] == []
 
 
