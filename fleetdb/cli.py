@@ -553,3 +553,9 @@ cli.add_command(report_command)
 from fleetdb.cli_capture import capture as capture_command  # noqa: E402
 
 cli.add_command(capture_command)
+
+from fleetdb.cli_trust import backup as backup_command  # noqa: E402
+from fleetdb.cli_trust import restore as restore_command  # noqa: E402
+
+cli.add_command(backup_command)
+cli.add_command(restore_command)
