@@ -187,8 +187,9 @@ def _cylinder_values(kind: str, text: str | None, default_unit: str) -> list[Any
         if not item:
             continue
         cyl_text, _, value_text = item.rpartition("=")
-        cylinder = int(cyl_text) if cyl_text.strip().isdigit() else position + 1
-        if cyl_text and not cyl_text.strip().isdigit():
+        digits = cyl_text.strip().isascii() and cyl_text.strip().isdigit()
+        cylinder = int(cyl_text) if digits else position + 1
+        if cyl_text and not digits:
             raise click.BadParameter(f"{item!r}: write cylinder=value, like 2=150",
                                      param_hint=f"--{kind}")
         try:

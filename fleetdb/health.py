@@ -68,18 +68,13 @@ def _stored_family_params(conn: Connection, week: dt.date) -> pd.DataFrame | Non
 
 def _store(conn: Connection, result: Assessment, week: dt.date, day: dt.date,
            full: bool) -> None:
-    """Write the snapshot rows (replacing this week's rows of these units).
+    """Write the snapshot rows (upserting this week's rows of these units).
 
     Snapshot rows are derived data, recomputed at will; tests and readings are never
     deleted.
     """
     units = result.units
-    ids = [int(u) for u in units.index]
     at = stamp(conn)
-    for start in range(0, len(ids), 1000):
-        chunk = ",".join(str(u) for u in ids[start:start + 1000])
-        conn.execute(text(f"DELETE FROM health_snapshot WHERE week_start = :w AND unit_id IN "
-                          f"({chunk})"), {"w": week})
     reasons: dict[int, list[dict[str, Any]]] = {}
     rr = result.reasons
     for uid, code, level, text_, numbers, test_id in zip(
@@ -113,7 +108,14 @@ def _store(conn: Connection, result: Assessment, week: dt.date, day: dt.date,
             "wear_kpa_per_1000h, computed_at) VALUES (:unit_id, :week_start, :as_of, :level, "
             ":main_code, :main_text, :reasons_json, :last_test_id, :last_tested_at, "
             ":last_hours, :projected_hours, :projected_hours_early, :projected_date, "
-            ":projected_date_early, :wear, :at)"), rows)
+            ":projected_date_early, :wear, :at) "
+            # Replace this week's row of the unit; two refreshes at once both succeed.
+            "ON CONFLICT (unit_id, week_start) DO UPDATE SET " + ", ".join(
+                f"{c} = excluded.{c}" for c in (
+                    "as_of", "level", "main_code", "main_text", "reasons_json", "last_test_id",
+                    "last_tested_at", "last_hours", "projected_hours", "projected_hours_early",
+                    "projected_date", "projected_date_early", "wear_kpa_per_1000h",
+                    "computed_at"))), rows)
     if full:
         _store_family_params(conn, result.family_params, week, at)
 
@@ -243,18 +245,20 @@ def board(engine: Engine, as_of: dt.date | None = None, *, site: str | None = No
     page = f" LIMIT {int(limit)} OFFSET {int(offset)}" if limit is not None else ""
     with engine.connect() as conn:
         # Sort and page on the keys alone, then fetch the wide columns of one page.
+        # By unit: a refresh in between replaces snapshot rows (new ids), never units.
         ids = [r[0] for r in conn.execute(text(
-            "SELECT s.id " + base + "WHERE " + " AND ".join(level_where)
+            "SELECT s.unit_id " + base + "WHERE " + " AND ".join(level_where)
             + f" ORDER BY {_LEVEL_ORDER}, (s.projected_date_early IS NULL), "
             "s.projected_date_early, u.fleet_no" + page), params)]
         wide = conn.execute(text(
-            "SELECT s.id, s.unit_id, u.fleet_no, st.name, f.name, s.level, s.main_code, "
+            "SELECT s.unit_id, s.unit_id, u.fleet_no, st.name, f.name, s.level, s.main_code, "
             "s.main_text, s.reasons_json, s.projected_date, s.projected_date_early, "
             "s.projected_hours, s.projected_hours_early, s.last_tested_at, s.last_hours, p.level "
-            + base + "WHERE s.id IN (" + (",".join(str(int(i)) for i in ids) or "NULL") + ")"),
-            {"p": previous}).all()
+            + base + "WHERE s.week_start = :w AND s.unit_id IN ("
+            + (",".join(str(int(i)) for i in ids) or "NULL") + ")"),
+            {"p": previous, "w": week}).all()
         by_id = {r[0]: r[1:] for r in wide}
-        rows = [by_id[i] for i in ids]
+        rows = [by_id[i] for i in ids if i in by_id]
         total = conn.execute(text("SELECT COUNT(*) " + base + "WHERE "
                                   + " AND ".join(level_where)), params).scalar_one()
         counts = dict(conn.execute(text("SELECT s.level, COUNT(*) " + base + "WHERE "
@@ -343,8 +347,11 @@ def unit_report(engine: Engine, fleet_no: str, as_of: dt.date | None = None) -> 
     The shape is documented in DEVELOPERS.md ("The health API") and in the README.
     """
     uid = unit_id_for(engine, fleet_no)
-    result = assess_units(engine, [uid], as_of, all_findings=True)
-    fr = frames.load(engine, [uid], as_of=result.as_of)
+    day, moment = _as_of(as_of)
+    with engine.connect() as conn:
+        params = _stored_family_params(conn, week_start(day))
+    fr = frames.load(engine, [uid], as_of=moment)  # read once: a write may come in between
+    result = assess_mod.assess(fr, moment, family_params=params, all_findings=True)
     u = result.units.loc[uid]
     fam = fr.families.loc[u["family_id"]]
     unit_row = fr.units.loc[uid]

@@ -196,17 +196,8 @@ def test_two_health_refreshes_of_one_unit_at_once(db_url: str,
     import datetime as dt
     import threading
 
-    from sqlalchemy.exc import IntegrityError
-
     from fleetdb import health
 
-    if db_url.startswith("postgresql"):
-        request.applymarker(pytest.mark.xfail(
-            strict=True, raises=IntegrityError,
-            reason="fleetdb/health.py _store: under READ COMMITTED the waiting DELETE skips "
-                   "the row the other refresh inserted, so its INSERT breaks "
-                   "uq_health_snapshot_unit_week (fix: pg_advisory_xact_lock, or "
-                   "INSERT ... ON CONFLICT DO UPDATE)"))
     migrate.upgrade(db_url)
     engine = db.make_engine(db_url)
     ingest.import_files(engine, [DATA / "fleet.csv", DATA / "tests.csv"], by="test")

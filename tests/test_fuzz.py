@@ -635,9 +635,6 @@ def _empty_pg_store(url: str) -> Engine:
     return db.make_engine(url)
 
 
-@pytest.mark.xfail(strict=True, raises=ValueError,
-                   reason="fleetdb/cli.py _cylinder_values: '²'.isdigit() is True, int('²') "
-                          "fails; use isascii() and isdigit()")
 def test_known_bugs_cli_log_cylinder_number(tmp_path: Any) -> None:
     from click.testing import CliRunner
 
