@@ -103,38 +103,6 @@ def unit_tests(engine: Engine, fleet_no: str, units: str = "psi") -> dict[str, A
     }
 
 
-def latest_compression(engine: Engine, as_of: pd.Timestamp | None = None) -> list[dict[str, Any]]:
-    """Each unit's latest valid compression test: spread and whether it is under the minimum.
-
-    Values are normalised to sea level (see :mod:`fleetdb.atmosphere`) before comparing.
-    """
-    from fleetdb.atmosphere import compression_to_sea_level
-
-    fr = frames_mod.load(engine, as_of=as_of)
-    tests = fr.tests[~fr.tests["voided"]]
-    dry = fr.readings[(fr.readings["kind"] == "compression")
-                      & fr.readings["test_id"].isin(tests.index)]
-    if dry.empty:
-        return []
-    last_test = (tests.loc[tests.index.isin(dry["test_id"])].reset_index()
-                 .sort_values("tested_at").groupby("unit_id").last()["test_id"])
-    dry = dry[dry["test_id"].isin(last_test)].copy()
-    dry["norm"] = compression_to_sea_level(dry["value"], tests["baro_kpa"].reindex(dry["test_id"])
-                                           .to_numpy())
-    stats = dry.groupby("test_id")["norm"].agg(["min", "max"])
-    out = []
-    for unit_id, test_id in last_test.items():
-        unit = fr.units.loc[unit_id]
-        fam = fr.families.loc[unit["family_id"]]
-        lo, hi = stats.loc[test_id, "min"], stats.loc[test_id, "max"]
-        out.append({"fleet_no": unit["fleet_no"], "site": unit["site"],
-                    "engine_family": unit["family"], "test_id": int(test_id),
-                    "tested_at": _iso(tests.at[test_id, "tested_at"]),
-                    "lowest_kpa": _num(lo), "highest_kpa": _num(hi),
-                    "ratio": _num(lo / hi, 3), "min_ratio": _num(fam["min_ratio"], 3),
-                    "below_minimum": bool(lo < fam["min_compression_kpa"])})
-    return sorted(out, key=lambda r: (not r["below_minimum"], r["ratio"]))
-
 
 def health_summary(report: dict[str, Any], units: str = "psi") -> dict[str, Any]:
     """The health part of ``fleetdb unit --json``, from :func:`fleetdb.health.unit_report`.
