@@ -14,7 +14,6 @@ import csv
 import datetime as dt
 import importlib
 import io
-import re
 from dataclasses import dataclass, field
 from functools import lru_cache
 from types import ModuleType
@@ -481,7 +480,6 @@ def _fleet_wear(url: str, day: dt.date, version: tuple[int, int, int]) -> FleetW
 PLAN_WEEKS = 13
 #: The key of closed weeks that apply to every site (``fleetdb.plan.ALL_SITES``).
 EVERY_SITE = plan.ALL_SITES
-_MAX_CLOSED_RANGE_WEEKS = 520
 
 
 @dataclass(frozen=True)
@@ -499,61 +497,6 @@ class PlanForm:
     priority: str | None = None
 
 
-def _whole_number(value: Any, what: str) -> int:
-    """A whole number of 0 or more from a number input or text; InvalidValue otherwise."""
-    typed = _text(value)
-    try:
-        number = float(typed)
-    except ValueError:
-        number = float("nan")
-    if not number.is_integer() or number < 0:
-        raise InvalidValue(f"{what}: write a whole number of 0 or more, not "
-                           f"{typed!r}" if typed else f"{what}: write a whole number of 0 or "
-                           "more (it is blank)")
-    return int(number)
-
-
-def parse_closed_weeks(typed: str | None, where: str) -> frozenset[dt.date]:
-    """The Mondays of the weeks typed: ``2026-W52, 2026-W53`` or ``2026-W52..2027-W01``.
-
-    :param typed: the text; blank means no closed week.
-    :param where: what the text is, for the message (``Closed weeks at Saltgrass Quay``).
-    :raises InvalidValue: a week that is not an ISO week, or a range that runs backwards.
-    """
-    days: set[dt.date] = set()
-    for item in re.split(r"[,;\s]+", _text(typed)):
-        if not item:
-            continue
-        first, _, last = item.partition("..")
-        try:
-            start, end = plan.parse_week(first), plan.parse_week(last or first)
-        except InvalidValue as exc:
-            raise InvalidValue(f"{where}: {exc}") from None
-        span = (end - start).days // 7
-        if not 0 <= span <= _MAX_CLOSED_RANGE_WEEKS:
-            raise InvalidValue(f"{where}: {item!r} must run forwards, at most "
-                               f"{_MAX_CLOSED_RANGE_WEEKS} weeks")
-        days.update(start + dt.timedelta(weeks=n) for n in range(span + 1))
-    return frozenset(days)
-
-
-def parse_priorities(typed: str | None) -> dict[str, int]:
-    """``LT-902=2, GS-901=1`` -> ``{"LT-902": 2, "GS-901": 1}`` (0 removes a raise).
-
-    :raises InvalidValue: an item that is not ``FLEET_NO=WEEKS`` with whole weeks.
-    """
-    out: dict[str, int] = {}
-    for item in re.split(r"[,;\n]+", _text(typed)):
-        fleet_no, sep, weeks = item.strip().rpartition("=")
-        if not item.strip():
-            continue
-        if not sep or not fleet_no.strip():
-            raise InvalidValue(f"Priority raises: {item.strip()!r}: write FLEET_NO=WEEKS, "
-                               "like LT-902=2")
-        out[fleet_no.strip()] = _whole_number(weeks, f"Priority raise of {fleet_no.strip()}")
-    return out
-
-
 def settings_from_form(form: PlanForm, base: plan.ShopSettings) -> plan.ShopSettings:
     """The shop settings the form describes, on top of ``base`` (the settings in force).
 
@@ -563,11 +506,11 @@ def settings_from_form(form: PlanForm, base: plan.ShopSettings) -> plan.ShopSett
     :raises InvalidValue: a blank, negative or fractional number, a bad week, a bad raise.
     """
     def per_site(typed: dict[str, Any], kept: Any, default: int, what: str) -> dict[str, int]:
-        values = {**kept, **{site: _whole_number(v, f"{what} at {site}")
+        values = {**kept, **{site: plan.parse_whole_number(v, f"{what} at {site}")
                              for site, v in typed.items()}}
         return {site: n for site, n in values.items() if n != default}
 
-    closed = {site: parse_closed_weeks(text_, "Closed weeks at every site"
+    closed = {site: plan.parse_closed_weeks(text_, "Closed weeks at every site"
                                        if site == plan.ALL_SITES else f"Closed weeks at {site}")
               for site, text_ in form.closed.items()}
     return plan.ShopSettings(
@@ -577,7 +520,7 @@ def settings_from_form(form: PlanForm, base: plan.ShopSettings) -> plan.ShopSett
         lead_weeks=per_site(form.lead_weeks, base.lead_weeks, base.default_lead_weeks,
                             "Parts lead time"),
         closed={site: days for site, days in closed.items() if days},
-        priority={f: n for f, n in parse_priorities(form.priority).items() if n})
+        priority={f: n for f, n in plan.parse_priorities(form.priority).items() if n})
 
 
 def plan_settings_in_force(url: str, as_of: dt.date | None) -> plan.ShopSettings:

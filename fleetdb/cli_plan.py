@@ -54,35 +54,31 @@ def _per_site(items: tuple[str, ...], what: str) -> tuple[int | None, dict[str, 
 
 def _closed(items: tuple[str, ...]) -> dict[str, frozenset[dt.date]] | None:
     """``[SITE=]YYYY-Www[..YYYY-Www]`` items -> {site or "*": Mondays}."""
-    from fleetdb.plan import ALL_SITES, parse_week
+    from fleetdb.plan import ALL_SITES, parse_closed_weeks
 
     if not items:
         return None
-    out: dict[str, set[dt.date]] = {}
+    out: dict[str, frozenset[dt.date]] = {}
     for item in items:
         site, sep, weeks = item.rpartition("=")
-        first, _, last = weeks.partition("..")
+        key = site.strip() if sep and site.strip() else ALL_SITES
         try:
-            start, end = parse_week(first), parse_week(last or first)
+            days = parse_closed_weeks(weeks, "--closed")
         except InvalidValue as exc:
-            raise click.BadParameter(str(exc), param_hint="--closed") from exc
-        if end < start:
-            raise click.BadParameter(f"{weeks!r}: the range ends before it starts",
-                                     param_hint="--closed")
-        days = out.setdefault(site.strip() if sep and site.strip() else ALL_SITES, set())
-        days.update(start + dt.timedelta(weeks=n) for n in range((end - start).days // 7 + 1))
-    return {k: frozenset(v) for k, v in out.items()}
+            raise click.BadParameter(str(exc).removeprefix("--closed: "),
+                                     param_hint="--closed") from exc
+        out[key] = out.get(key, frozenset()) | days
+    return out
 
 
 def _priorities(items: tuple[str, ...]) -> dict[str, int] | None:
-    out = {}
-    for item in items:
-        fleet_no, sep, weeks = item.rpartition("=")
-        if not sep or not fleet_no.strip():
-            raise click.BadParameter(f"{item!r}: write FLEET_NO=WEEKS, like LT-902=2",
-                                     param_hint="--priority")
-        out[fleet_no.strip()] = _whole(weeks, "a priority")
-    return out or None
+    """``FLEET_NO=WEEKS`` items -> {fleet_no: weeks}."""
+    from fleetdb.plan import parse_priorities
+
+    try:
+        return parse_priorities(items) or None
+    except InvalidValue as exc:
+        raise click.BadParameter(str(exc), param_hint="--priority") from exc
 
 
 def _settings_summary(settings: dict[str, Any]) -> str:

@@ -99,6 +99,72 @@ def parse_week(text: str | dt.date) -> dt.date:
             from None
 
 
+#: The longest closed-week range accepted (ten years), against typing slips like 2062-W01.
+MAX_CLOSED_RANGE_WEEKS = 520
+
+
+def parse_closed_weeks(typed: str | None, where: str = "Closed weeks") -> frozenset[dt.date]:
+    """The Mondays of the weeks typed: ``2026-W52, 2026-W53`` or ``2026-W52..2027-W01``.
+
+    The one parser behind ``fleetdb plan --closed`` and the Plan page.
+
+    :param typed: weeks and ranges separated by commas, semicolons or spaces; blank: none.
+    :param where: what the text is, for the message (``Closed weeks at Saltgrass Quay``).
+    :raises InvalidValue: a week that is not an ISO week, or a range that runs backwards or
+        spans more than ``MAX_CLOSED_RANGE_WEEKS``.
+    """
+    days: set[dt.date] = set()
+    for item in re.split(r"[,;\s]+", (typed or "").strip()):
+        if not item:
+            continue
+        first, _, last = item.partition("..")
+        try:
+            start, end = parse_week(first), parse_week(last or first)
+        except InvalidValue as exc:
+            raise InvalidValue(f"{where}: {exc}") from None
+        span = (end - start).days // 7
+        if not 0 <= span <= MAX_CLOSED_RANGE_WEEKS:
+            raise InvalidValue(f"{where}: {item!r} must run forwards, at most "
+                               f"{MAX_CLOSED_RANGE_WEEKS} weeks")
+        days.update(start + dt.timedelta(weeks=n) for n in range(span + 1))
+    return frozenset(days)
+
+
+def parse_whole_number(typed: Any, what: str) -> int:
+    """A whole number of 0 or more from text or a number input; InvalidValue otherwise."""
+    text = "" if typed is None else str(typed).strip()
+    try:
+        number = float(text)
+    except ValueError:
+        number = float("nan")
+    if not number.is_integer() or number < 0:
+        raise InvalidValue(f"{what}: write a whole number of 0 or more, not {text!r}" if text
+                           else f"{what}: write a whole number of 0 or more (it is blank)")
+    return int(number)
+
+
+def parse_priorities(typed: str | Sequence[str] | None) -> dict[str, int]:
+    """``LT-902=2, GS-901=1`` (or those items as a list) -> ``{"LT-902": 2, "GS-901": 1}``.
+
+    A raise of 0 removes one. The one parser behind ``fleetdb plan --priority`` and the Plan
+    page.
+
+    :raises InvalidValue: an item that is not ``FLEET_NO=WEEKS`` with whole weeks.
+    """
+    items = typed if isinstance(typed, (list, tuple)) else re.split(r"[,;\n]+", typed or "")
+    out: dict[str, int] = {}
+    for item in items:
+        fleet_no, sep, weeks = item.strip().rpartition("=")
+        if not item.strip():
+            continue
+        if not sep or not fleet_no.strip():
+            raise InvalidValue(f"Priority raises: {item.strip()!r}: write FLEET_NO=WEEKS, "
+                               "like LT-902=2")
+        out[fleet_no.strip()] = parse_whole_number(weeks,
+                                                   f"Priority raise of {fleet_no.strip()}")
+    return out
+
+
 def _weeks_between(start: dt.date, day: dt.date) -> int:
     return (week_start(day) - start).days // 7
 

@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import datetime as dt
 import json
-import shutil
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -23,9 +22,10 @@ import pytest
 from sqlalchemy import text
 
 from dashboard import create_app, data, figures, ids
-from fleetdb import db, demo, exports, health, migrate
+from fleetdb import db, exports, health
 from fleetdb import plan as P
 from fleetdb.errors import InvalidValue
+from tests.conftest import copy_store
 
 AS_OF = dt.date(2026, 12, 1)  # a Tuesday of ISO week 2026-W49 (Monday 2026-11-30)
 WORN = {"LT-902", "LV-903", "LV-933", "GS-901"}
@@ -115,7 +115,7 @@ def test_timeline_without_jobs_says_so() -> None:
     ("2026W52;2026-w52", ["2026-12-21"]),
 ])
 def test_closed_weeks_text(typed: str, mondays: list[str]) -> None:
-    got = data.parse_closed_weeks(typed, "Closed weeks at A")
+    got = P.parse_closed_weeks(typed, "Closed weeks at A")
     assert sorted(d.isoformat() for d in got) == mondays
 
 
@@ -127,7 +127,7 @@ def test_closed_weeks_text(typed: str, mondays: list[str]) -> None:
 ])
 def test_bad_closed_weeks_are_refused(typed: str, message: str) -> None:
     with pytest.raises(InvalidValue, match=message):
-        data.parse_closed_weeks(typed, "Closed weeks at A")
+        P.parse_closed_weeks(typed, "Closed weeks at A")
 
 
 def test_form_to_settings_keeps_what_is_unchanged() -> None:
@@ -157,23 +157,9 @@ def test_bad_numbers_are_refused(form: data.PlanForm, message: str) -> None:
 
 # -- the callbacks, on the demo store --------------------------------------------------------
 
-@pytest.fixture(scope="module")
-def demo_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    path = tmp_path_factory.mktemp("plan-page") / "demo.sqlite"
-    url = f"sqlite:///{path}"
-    migrate.upgrade(url)
-    engine = db.make_engine(url)
-    demo.build_into(engine, AS_OF)
-    health.refresh_fleet(engine, AS_OF)
-    engine.dispose()
-    return path
-
-
 @pytest.fixture
 def store_url(demo_file: Path, tmp_path: Path) -> Iterator[str]:
-    copy = tmp_path / "demo.sqlite"
-    shutil.copy(demo_file, copy)
-    url = f"sqlite:///{copy}"
+    url = copy_store(demo_file, tmp_path)
     yield url
     db.get_engine(url).dispose()
 
