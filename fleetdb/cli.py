@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import functools
+import importlib
 import json
 import sys
 from collections.abc import Callable
@@ -82,7 +83,31 @@ def print_table(rows: list[dict[str, Any]], columns: list[tuple[str, str]]) -> N
         click.echo("  ".join(v.ljust(w) for v, w in zip(c, widths, strict=True)).rstrip())
 
 
-@click.group(context_settings=CONTEXT_SETTINGS)
+class FleetGroup(click.Group):
+    """The ``fleetdb`` group: the commands defined here, plus those of the sibling modules
+    (``cli_plan``, ``cli_capture``, ``cli_trust``), loaded when first asked for. Those modules
+    import this one's helpers, so loading them lazily keeps any import order working."""
+
+    #: command name -> "module:attribute" of a command defined in a sibling module.
+    lazy_commands = {
+        "plan": "fleetdb.cli_plan:plan",
+        "report": "fleetdb.cli_plan:report",
+        "capture": "fleetdb.cli_capture:capture",
+        "backup": "fleetdb.cli_trust:backup",
+        "restore": "fleetdb.cli_trust:restore",
+    }
+
+    def list_commands(self, ctx: click.Context) -> list[str]:
+        return sorted({*super().list_commands(ctx), *self.lazy_commands})
+
+    def get_command(self, ctx: click.Context, cmd_name: str) -> click.Command | None:
+        if cmd_name in self.lazy_commands and cmd_name not in self.commands:
+            module, _, attribute = self.lazy_commands[cmd_name].partition(":")
+            self.add_command(getattr(importlib.import_module(module), attribute), cmd_name)
+        return super().get_command(ctx, cmd_name)
+
+
+@click.group(cls=FleetGroup, context_settings=CONTEXT_SETTINGS)
 @click.version_option(__version__, "--version", prog_name="fleetdb")
 def cli() -> None:
     """Cranking-compression and vacuum history of a fleet's engines.
@@ -200,6 +225,30 @@ def _cylinder_values(kind: str, text: str | None, default_unit: str) -> list[Any
     return out
 
 
+def condition_options(crank_rpm_help: str, what: str) -> Callable[[Callable], Callable]:
+    """The test conditions a technician types, shared by ``log`` and ``capture``:
+    ``--battery-v --crank-rpm --engine-temp-c --baro-kpa --throttle-open/--throttle-shut
+    --technician --note``."""
+    options = [
+        click.option("--battery-v", help="Battery volts under crank."),
+        click.option("--crank-rpm", help=crank_rpm_help),
+        click.option("--engine-temp-c", help="Engine temperature, °C."),
+        click.option("--baro-kpa",
+                     help="Barometer at the test, kPa absolute (else from site elevation)."),
+        click.option("--throttle-open/--throttle-shut", default=None,
+                     help="Whether the throttle was held wide open while cranking."),
+        click.option("--technician", help=f"Who took the {what}."),
+        click.option("--note", help="Anything worth keeping with the test."),
+    ]
+
+    def decorate(func: Callable) -> Callable:
+        for option in reversed(options):
+            func = option(func)
+        return func
+
+    return decorate
+
+
 @cli.command()
 @click.argument("fleet_no")
 @click.option("--at", "tested_at", required=True, metavar="'YYYY-MM-DD HH:MM'",
@@ -217,14 +266,7 @@ def _cylinder_values(kind: str, text: str | None, default_unit: str) -> list[Any
 @click.option("--vacuum-idle", metavar="VALUE", help="Manifold vacuum at warm idle.")
 @click.option("--vacuum-units", default="inHg", show_default=True,
               type=click.Choice(["inHg", "mmHg", "kPa"]))
-@click.option("--battery-v", help="Battery volts under crank.")
-@click.option("--crank-rpm", help="Cranking speed, rpm.")
-@click.option("--engine-temp-c", help="Engine temperature, °C.")
-@click.option("--baro-kpa", help="Barometer at the test, kPa absolute (else from site elevation).")
-@click.option("--throttle-open/--throttle-shut", default=None,
-              help="Whether the throttle was held wide open while cranking.")
-@click.option("--technician", help="Who took the test.")
-@click.option("--note", help="Anything worth keeping with the test.")
+@condition_options("Cranking speed, rpm.", "test")
 @click.option("--dry-run", is_flag=True, help="Check only; write nothing.")
 @click.option("--by", default=None, help="Who logs it [default: your login name].")
 @db_option
@@ -542,21 +584,3 @@ def defaults(as_json: bool) -> None:
 def main() -> None:
     """Console-script entry point."""
     cli(prog_name="fleetdb")
-
-
-# The planner's commands live in their own module, which imports the helpers above.
-from fleetdb.cli_plan import plan as plan_command  # noqa: E402
-from fleetdb.cli_plan import report as report_command  # noqa: E402
-
-cli.add_command(plan_command)
-cli.add_command(report_command)
-
-from fleetdb.cli_capture import capture as capture_command  # noqa: E402
-
-cli.add_command(capture_command)
-
-from fleetdb.cli_trust import backup as backup_command  # noqa: E402
-from fleetdb.cli_trust import restore as restore_command  # noqa: E402
-
-cli.add_command(backup_command)
-cli.add_command(restore_command)

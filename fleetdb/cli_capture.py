@@ -15,6 +15,7 @@ import click
 from fleetdb.cli import (
     _engine,
     _refresh_after_write,
+    condition_options,
     db_option,
     friendly_errors,
     json_option,
@@ -114,14 +115,7 @@ def _print_report(data: dict[str, Any], described: dict[str, str]) -> None:
 @click.option("--idle-rpm", type=click.FloatRange(100, 5000), metavar="RPM",
               help="Approximate idle speed for an idle vacuum channel [default: from the "
                    "pulses].")
-@click.option("--battery-v", help="Battery volts under crank.")
-@click.option("--crank-rpm", help="Cranking speed, rpm [default: derived from the capture].")
-@click.option("--engine-temp-c", help="Engine temperature, °C.")
-@click.option("--baro-kpa", help="Barometer at the test, kPa absolute (else from site elevation).")
-@click.option("--throttle-open/--throttle-shut", default=None,
-              help="Whether the throttle was held wide open while cranking.")
-@click.option("--technician", help="Who took the capture.")
-@click.option("--note", help="Anything worth keeping with the test.")
+@condition_options("Cranking speed, rpm [default: derived from the capture].", "capture")
 @click.option("--dry-run", is_flag=True, help="Derive and check; write nothing.")
 @click.option("--by", default=None, help="Who logs it [default: your login name].")
 @json_option

@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+import click
 import pytest
 from click.testing import CliRunner
 
@@ -125,7 +126,9 @@ def test_defaults_lists_sources() -> None:
 
 
 def test_every_command_has_help_with_example() -> None:
-    for name, command in cli.commands.items():
+    ctx = click.Context(cli)
+    for name in cli.list_commands(ctx):
+        command = cli.get_command(ctx, name)
         out = CliRunner().invoke(cli, [name, "--help"]).output
         assert command.help and "Example:" in out, name
         readme = (Path(__file__).parent.parent / "README.md").read_text()
