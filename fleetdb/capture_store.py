@@ -204,8 +204,8 @@ def _pressure_findings(ch: Channel, res: cap.PressureResult) -> list[dict[str, A
                      f"({from_kpa(res.intake_depression_kpa, 'inHg'):.1f} inHg) below ambient "
                      "on its intake strokes: with the throttle held open it should stay near "
                      "0, so the intake is restricted or the throttle stays shut; every reading "
-                     f"of this test is then low (limit {limit.value:g} {limit.unit}, default "
-                     f"{limit.ref}, {limit.source})."}]
+                     f"of this test is then low (limit {limit.value:g} {limit.unit}, fleetdb "
+                     f"default, {limit.source})."}]
 
 
 def _vacuum_summary(res: cap.VacuumResult) -> dict[str, Any]:

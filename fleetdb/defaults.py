@@ -104,7 +104,4 @@ def _v(name: str) -> float:
 
 
 def _src(name: str) -> str:
-    t = DEFAULTS[name]
-    if t.ref in ("checks", "health"):
-        return f"fleetdb default, {t.source}"
-    return f"default {t.ref}, {t.source}"
+    return f"fleetdb default, {DEFAULTS[name].source}"

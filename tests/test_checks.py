@@ -154,7 +154,7 @@ def test_spread_rules_on_domain_example(rule, fails, source):
 
 
 @pytest.mark.parametrize("min_ratio, source_text", [
-    (np.nan, "default D1, several manufacturers' service procedures"),  # D1 (a)
+    (np.nan, "fleetdb default, several manufacturers' service procedures"),  # D1 (a)
     (0.80, "the family's service data"),  # domain "How to use": family data overrides (b)
 ])
 def test_messages_name_the_limit_and_its_source(min_ratio, source_text):
