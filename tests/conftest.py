@@ -7,7 +7,9 @@ PostgreSQL tests skip with the reason shown; under CI (CI=true) that skip is a f
 
 from __future__ import annotations
 
+import datetime as dt
 import os
+import shutil
 import uuid
 from collections.abc import Iterator
 from pathlib import Path
@@ -23,6 +25,8 @@ PG_URL = os.environ.get("FLEETDB_TEST_PG_URL",
                         "postgresql+psycopg://postgres@127.0.0.1:5432/test")
 IN_CI = os.environ.get("CI", "").lower() in ("1", "true", "yes")
 DATA = Path(__file__).parent / "data"
+#: The day the shared demo store is built and refreshed as of (demo_fleet/README.md).
+DEMO_AS_OF = dt.date(2026, 12, 1)
 
 
 def skip_or_fail(reason: str) -> None:
@@ -98,3 +102,27 @@ def write(path: Path, text_: str) -> Path:
     lines = [line.strip() for line in text_.strip().splitlines()]
     path.write_text("\n".join(lines) + "\n", encoding="utf-8")
     return path
+
+
+@pytest.fixture(scope="session")
+def demo_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The demo fleet built once per test session into a SQLite file, refreshed as of
+    DEMO_AS_OF. Shared by every test that reads it: never write to it, take
+    ``copy_store(demo_file, tmp_path)`` first."""
+    from fleetdb import demo, health
+
+    path = tmp_path_factory.mktemp("demo-store") / "demo.sqlite"
+    url = f"sqlite:///{path}"
+    migrate.upgrade(url)
+    engine = db_mod.make_engine(url)
+    demo.build_into(engine, DEMO_AS_OF)
+    health.refresh_fleet(engine, DEMO_AS_OF)
+    engine.dispose()
+    return path
+
+
+def copy_store(store: Path, folder: Path, name: str = "demo.sqlite") -> str:
+    """A private copy of a SQLite store in ``folder``, free to change; returns its URL."""
+    copy = folder / name
+    shutil.copy(store, copy)
+    return f"sqlite:///{copy}"

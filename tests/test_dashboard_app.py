@@ -17,6 +17,7 @@ import pytest
 from dashboard import components, create_app, data, ids
 from fleetdb import db, ingest, logbook, migrate
 from fleetdb.errors import InvalidInput, SchemaOutOfDate
+from tests.conftest import copy_store
 
 DATA = Path(__file__).parent / "data"
 
@@ -318,19 +319,11 @@ DEMO_DAY = "2026-12-01"
 
 
 @pytest.fixture(scope="module")
-def demo_url(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
-    """A SQLite store with the demo fleet built as of DEMO_DAY and its week refreshed."""
-    import datetime as dt
-
-    from fleetdb import demo, health
-
-    url = f"sqlite:///{tmp_path_factory.mktemp('demo') / 'demo.sqlite'}"
-    migrate.upgrade(url)
-    engine = db.get_engine(url)
-    demo.build_into(engine, as_of=dt.date.fromisoformat(DEMO_DAY))
-    health.refresh_fleet(engine, dt.date.fromisoformat(DEMO_DAY))
+def demo_url(demo_file: Path, tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
+    """A copy of the session's demo store (built and refreshed as of DEMO_DAY)."""
+    url = copy_store(demo_file, tmp_path_factory.mktemp("demo"))
     yield url
-    engine.dispose()
+    db.get_engine(url).dispose()
     data.unit_engine.cache_clear()
 
 

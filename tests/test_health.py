@@ -4,7 +4,6 @@ that keep levels honest (one-unit refresh = full refresh, voided tests stay out 
 from __future__ import annotations
 
 import datetime as dt
-import shutil
 from pathlib import Path
 
 import pandas as pd
@@ -12,32 +11,17 @@ import pytest
 from sqlalchemy.engine import Engine
 
 import demo_fleet
-from fleetdb import assess, db, frames, health, logbook, migrate
-from fleetdb import demo as demo_mod
+from fleetdb import assess, db, frames, health, logbook
+from tests.conftest import DEMO_AS_OF, copy_store
 
-AS_OF = dt.date(2026, 12, 1)
+AS_OF = DEMO_AS_OF
 STORIES = demo_fleet.build(as_of=AS_OF).stories
-
-
-@pytest.fixture(scope="session")
-def demo_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    """The demo fleet built once into a SQLite file, refreshed as of AS_OF."""
-    path = tmp_path_factory.mktemp("demo") / "demo.sqlite"
-    url = f"sqlite:///{path}"
-    migrate.upgrade(url)
-    engine = db.make_engine(url)
-    demo_mod.build_into(engine, AS_OF)
-    health.refresh_fleet(engine, AS_OF)
-    engine.dispose()
-    return path
 
 
 @pytest.fixture
 def demo(demo_file: Path, tmp_path: Path) -> Engine:
     """A private copy of the demo store, free to change."""
-    copy = tmp_path / "demo.sqlite"
-    shutil.copy(demo_file, copy)
-    engine = db.make_engine(f"sqlite:///{copy}")
+    engine = db.make_engine(copy_store(demo_file, tmp_path))
     yield engine
     engine.dispose()
 

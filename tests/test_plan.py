@@ -9,8 +9,6 @@ from __future__ import annotations
 
 import datetime as dt
 import json
-import os
-import shutil
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -25,12 +23,11 @@ from sqlalchemy import text
 from sqlalchemy.engine import Engine
 
 import demo_fleet
-from fleetdb import db, health, ingest, migrate
-from fleetdb import demo as demo_mod
+from fleetdb import db, health, ingest
 from fleetdb import plan as P
 from fleetdb.cli_plan import plan as plan_cmd
 from fleetdb.errors import InvalidValue
-from tests.conftest import write
+from tests.conftest import copy_store, write
 
 AS_OF = dt.date(2026, 12, 1)  # a Tuesday of ISO week 2026-W49
 WEEK0 = dt.date(2026, 11, 30)
@@ -269,32 +266,9 @@ def test_settings_validate_and_round_trip() -> None:
 
 # -- the demo fleet ---------------------------------------------------------------------------
 
-def built_demo(factory: pytest.TempPathFactory) -> Path:
-    """The demo store as of AS_OF, built once per test session (shared with test_report)."""
-    path = factory.getbasetemp() / "plan-demo" / "demo.sqlite"
-    if not path.exists():
-        path.parent.mkdir(exist_ok=True)
-        scratch = path.with_name(f"building-{os.getpid()}.sqlite")
-        url = f"sqlite:///{scratch}"
-        migrate.upgrade(url)
-        engine = db.make_engine(url)
-        demo_mod.build_into(engine, AS_OF)
-        health.refresh_fleet(engine, AS_OF)
-        engine.dispose()
-        scratch.rename(path)
-    return path
-
-
-@pytest.fixture(scope="session")
-def demo_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    return built_demo(tmp_path_factory)
-
-
 @pytest.fixture
 def demo_url(demo_file: Path, tmp_path: Path) -> str:
-    copy = tmp_path / "demo.sqlite"
-    shutil.copy(demo_file, copy)
-    return f"sqlite:///{copy}"
+    return copy_store(demo_file, tmp_path)
 
 
 @pytest.fixture

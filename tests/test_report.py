@@ -26,21 +26,15 @@ from fleetdb import plan as P
 from fleetdb.cli_plan import report as report_cmd
 from fleetdb.exports import CSV_COLUMNS, PRODID, plan_csv, plan_ics, safe_cell
 from fleetdb.report import LEVEL_SHAPES, render, report_as_of, unit_chart, weekly_report
-from tests.test_plan import AS_OF, WEEK0, WORN, built_demo, small_store  # noqa: F401
+from tests.conftest import copy_store
+from tests.test_plan import AS_OF, WEEK0, WORN, small_store  # noqa: F401
 
 PSI_KPA = 6.894757293168361  # NIST SP 811: 1 psi = 6.894 757 kPa (exact from definitions)
 
 
-@pytest.fixture(scope="session")
-def demo_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    return built_demo(tmp_path_factory)
-
-
 @pytest.fixture
 def demo(demo_file: Path, tmp_path: Path) -> Engine:
-    copy = tmp_path / "demo.sqlite"
-    shutil.copy(demo_file, copy)
-    engine = db.make_engine(f"sqlite:///{copy}")
+    engine = db.make_engine(copy_store(demo_file, tmp_path))
     yield engine
     engine.dispose()
 

@@ -18,7 +18,8 @@ from typing import Any
 import pytest
 
 from dashboard import components, data
-from fleetdb import db, demo, health, logbook, migrate
+from fleetdb import db, health, logbook
+from tests.conftest import copy_store
 
 pytestmark = pytest.mark.browser
 
@@ -30,12 +31,10 @@ SOUND_TOLERATED = {"sound", "watch"}
 
 
 @pytest.fixture(scope="module")
-def store_url(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
-    """The demo fleet as of DAY in a SQLite file, its week refreshed (overrides conftest's)."""
-    url = f"sqlite:///{tmp_path_factory.mktemp('demo') / 'demo.sqlite'}"
-    migrate.upgrade(url)
+def store_url(demo_file: Path, tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
+    """A copy of the session's demo store as of DAY (overrides conftest's store_url)."""
+    url = copy_store(demo_file, tmp_path_factory.mktemp("demo"))
     engine = db.get_engine(url)
-    demo.build_into(engine, as_of=DAY)
     health.refresh_fleet(engine, DAY - dt.timedelta(days=7))  # last week: changes to show
     health.refresh_fleet(engine, DAY)
     yield url

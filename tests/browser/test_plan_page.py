@@ -19,8 +19,9 @@ import pytest
 from sqlalchemy import text
 
 from dashboard import data
-from fleetdb import db, demo, health, migrate
+from fleetdb import db, health
 from fleetdb import plan as P
+from tests.conftest import copy_store
 
 pytestmark = pytest.mark.browser
 
@@ -29,13 +30,10 @@ SITE = "Saltgrass Quay"
 
 
 @pytest.fixture(scope="module")
-def store_url(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
-    """The demo fleet as of DAY in a SQLite file, its week refreshed (overrides conftest's)."""
-    url = f"sqlite:///{tmp_path_factory.mktemp('plan-demo') / 'demo.sqlite'}"
-    migrate.upgrade(url)
+def store_url(demo_file: Path, tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
+    """A copy of the session's demo store as of DAY (overrides conftest's store_url)."""
+    url = copy_store(demo_file, tmp_path_factory.mktemp("demo"))
     engine = db.get_engine(url)
-    demo.build_into(engine, as_of=DAY)
-    health.refresh_fleet(engine, DAY)
     yield url
     engine.dispose()
     data.unit_engine.cache_clear()
