@@ -21,6 +21,14 @@ def _sqlite_pragmas(dbapi_connection, _record) -> None:  # noqa: ANN001 - DBAPI 
     cursor.close()
 
 
+def ensure_sqlite_folder(url: str) -> None:
+    """Create the folder of a SQLite file URL if it is missing (a fresh machine has no data
+    folder yet); other URLs are left alone."""
+    parsed = make_url(url)
+    if parsed.get_backend_name() == "sqlite" and parsed.database not in (None, "", ":memory:"):
+        Path(parsed.database).parent.mkdir(parents=True, exist_ok=True)
+
+
 def make_engine(url: str) -> Engine:
     """A new engine for ``url``; SQLite files and their folder are created on demand.
 
@@ -28,8 +36,7 @@ def make_engine(url: str) -> Engine:
     """
     parsed = make_url(url)
     if parsed.get_backend_name() == "sqlite":
-        if parsed.database and parsed.database != ":memory:":
-            Path(parsed.database).parent.mkdir(parents=True, exist_ok=True)
+        ensure_sqlite_folder(url)
         engine = create_engine(url, connect_args={"timeout": SQLITE_BUSY_TIMEOUT_MS / 1000})
         event.listen(engine, "connect", _sqlite_pragmas)
         return engine

@@ -7,6 +7,7 @@ from sqlalchemy import create_engine, pool, text
 
 import fleetdb.models as models
 from fleetdb.config import database_url
+from fleetdb.db import ensure_sqlite_folder
 
 config = context.config
 target_metadata = models.metadata
@@ -26,6 +27,7 @@ def run_migrations_offline() -> None:
 
 def run_migrations_online() -> None:
     url = _url()
+    ensure_sqlite_folder(url)
     engine = create_engine(url, poolclass=pool.NullPool)
     with engine.connect() as connection:
         if connection.dialect.name == "sqlite":

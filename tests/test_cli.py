@@ -142,3 +142,29 @@ def test_demo_twice_changes_nothing(db_url: str) -> None:
     second = run(["demo", "--as-of", "2026-12-01", "--no-serve"], db_url)
     assert "already in this database" in second
     assert json.loads(run(["units", "--json"], db_url)) == before
+
+
+def test_fresh_machine_default_store_folder_is_created(tmp_path: Path) -> None:
+    """A newcomer's first run: no --db, no FLEETDB_DATABASE_URL, and no data folder yet
+    (a fresh home directory). The installed ``fleetdb`` script must create the folder."""
+    import os
+    import subprocess
+    import sys
+
+    home = tmp_path / "home"
+    home.mkdir()
+    env = {k: v for k, v in os.environ.items()
+           if k not in ("FLEETDB_DATABASE_URL", "XDG_DATA_HOME")}
+    env["HOME"] = str(home)
+    script = Path(sys.executable).parent / "fleetdb"
+    where = subprocess.run([str(script), "where"], env=env, capture_output=True, text=True,
+                           check=True).stdout
+    assert str(home) in where and "default" in where
+    init = subprocess.run([str(script), "init"], env=env, capture_output=True, text=True)
+    assert init.returncode == 0, init.stderr
+    assert "Traceback" not in init.stderr
+    stored = list(home.rglob("fleetdb.sqlite"))
+    assert len(stored) == 1 and stored[0].stat().st_size > 0
+    units = subprocess.run([str(script), "units", "--json"], env=env, capture_output=True,
+                           text=True, check=True).stdout
+    assert json.loads(units) == []
