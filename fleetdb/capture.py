@@ -39,7 +39,7 @@ Tolerances reached on physics-based synthetic captures are in tests/test_capture
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from scipy.ndimage import uniform_filter1d
@@ -200,6 +200,10 @@ class PressureResult:
     crank_rpm: float
     intake_depression_kpa: float  # lowest intake-stroke pressure below ambient (positive)
     deg_per_sample: float
+    #: Each cycle's lowest intake-stroke pressure below ambient (between events i and i+1).
+    depression_by_cycle_kpa: np.ndarray = field(default_factory=lambda: np.empty(0))
+    #: Cranking speed over each spacing between events i and i+1, rpm.
+    rpm_by_cycle: np.ndarray = field(default_factory=lambda: np.empty(0))
 
 
 def _refine_peaks(x: np.ndarray, idx: np.ndarray, half: int) -> tuple[np.ndarray, np.ndarray]:
@@ -260,6 +264,7 @@ def compression_events(time_s: np.ndarray, gauge_kpa: np.ndarray, rate_hz: float
     pos = np.rint(peaks[:-1, None] + frac[None, :] * np.diff(peaks)[:, None]).astype(int)
     depression = -float(np.min(np.median(smooth[pos], axis=0)))
     return PressureResult(
+        depression_by_cycle_kpa=-np.min(smooth[pos], axis=1), rpm_by_cycle=120.0 / spacing,
         peak_times_s=times, peaks_kpa=heights, first_kpa=float(heights[0]),
         settled_kpa=settled, first_pct=float(100.0 * heights[0] / settled),
         events_to_90pct=int(reached[0]) + 1, crank_rpm=rpm,
@@ -461,3 +466,44 @@ def current_humps(time_s: np.ndarray, amps: np.ndarray, rate_hz: float, cylinder
                          relative_pct=dict(sorted(relative.items())),
                          height_a=dict(sorted(height.items())), crank_rpm=float(rpm),
                          sync=sync, humps_used=int(np.count_nonzero(~np.isnan(heights))))
+
+
+# -- display ----------------------------------------------------------------------------------
+
+def envelope(time_s: np.ndarray, values: np.ndarray, *, start_s: float | None = None,
+             end_s: float | None = None, buckets: int = 2000) -> tuple[np.ndarray, np.ndarray]:
+    """A channel thinned for drawing: the lowest and highest sample of each time bucket.
+
+    A line through the points returned traces the channel's envelope, so every compression
+    peak and every intake-stroke trough survives however many samples are dropped; a
+    window that holds at most ``2 * buckets`` samples comes back whole (full resolution).
+    One sample either side of the window is kept so the line reaches its edges.
+
+    :param time_s: sample times, seconds, increasing.
+    :param values: the channel, same length.
+    :param start_s: start of the window (None: the first sample).
+    :param end_s: end of the window (None: the last sample).
+    :param buckets: how many buckets (at most twice as many points come back).
+    :returns: (times, values) of the points to draw, in time order.
+    """
+    t = np.asarray(time_s)
+    x = np.asarray(values)
+    lo = 0 if start_s is None else max(0, int(np.searchsorted(t, start_s, "left")) - 1)
+    hi = t.size if end_s is None else min(t.size, int(np.searchsorted(t, end_s, "right")) + 1)
+    hi = max(hi, min(t.size, lo + 2))
+    n = hi - lo
+    if n <= 2 * buckets:
+        return t[lo:hi], x[lo:hi]
+    size = -(-n // buckets)
+    whole = n // size * size
+    blocks = x[lo:lo + whole].reshape(-1, size)
+    starts = lo + size * np.arange(blocks.shape[0])
+    first = starts + np.argmin(blocks, axis=1)
+    second = starts + np.argmax(blocks, axis=1)
+    picks = [np.minimum(first, second), np.maximum(first, second)]
+    if whole < n:  # the tail, shorter than a bucket
+        tail = x[lo + whole:hi]
+        ends = sorted({lo + whole + int(np.argmin(tail)), lo + whole + int(np.argmax(tail))})
+        picks.append(np.asarray(ends))
+    idx = np.concatenate([np.column_stack(picks[:2]).ravel(), *picks[2:]])
+    return t[idx], x[idx]

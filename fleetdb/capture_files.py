@@ -220,6 +220,22 @@ def problem(name: str, column: str | None, message: str, line: int | None = None
     return InvalidInput([Problem(name, line, column, message)])
 
 
+def columns_of(path: Path | str, name: str | None = None) -> list[str]:
+    """The column names of a capture file's header line, as the technician will map them.
+
+    :param path: the capture file.
+    :param name: what messages call the file (default: its path).
+    :raises InvalidInput: not UTF-8, NUL bytes, an empty first line, a repeated column.
+    """
+    path = Path(path)
+    name = name or str(path)
+    header = _header(path, name)
+    dupes = sorted({h for h in header if header.count(h) > 1})
+    if dupes:
+        raise problem(name, dupes[0], "column appears twice in the header", 1)
+    return header
+
+
 def _header(path: Path, name: str) -> list[str]:
     try:
         with open(path, encoding="utf-8-sig", newline="") as fh:
@@ -239,7 +255,7 @@ def _header(path: Path, name: str) -> list[str]:
 
 def read_capture(path: Path | str, time_column: str, columns: Sequence[str], *,
                  time_unit: str = "s", chunk_rows: int = CHUNK_ROWS,
-                 progress: Progress | None = None) -> CaptureData:
+                 progress: Progress | None = None, name: str | None = None) -> CaptureData:
     """Read the time column and the mapped columns of a capture CSV, chunk by chunk.
 
     :param path: the capture file.
@@ -248,10 +264,12 @@ def read_capture(path: Path | str, time_column: str, columns: Sequence[str], *,
     :param time_unit: ``s``, ``ms`` or ``us``.
     :param chunk_rows: rows per chunk.
     :param progress: called with (bytes read, file size) as the file is read.
+    :param name: what messages call the file (default: its path), e.g. the name of a file
+        uploaded through the dashboard rather than where the server keeps it.
     :raises InvalidInput: naming the file, line and column of the first problem.
     """
     path = Path(path)
-    name = str(path)
+    name = name or str(path)
     header = _header(path, name)
     dupes = sorted({h for h in header if header.count(h) > 1})
     if dupes:

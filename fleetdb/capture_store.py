@@ -190,7 +190,9 @@ def _pressure_summary(res: cap.PressureResult) -> dict[str, Any]:
             "events_to_90pct": res.events_to_90pct, "crank_rpm": _round(res.crank_rpm),
             "intake_depression_kpa": _round(res.intake_depression_kpa, 2),
             "peaks_kpa": [_round(p) for p in res.peaks_kpa],
-            "peak_times_s": [_round(t, 4) for t in res.peak_times_s]}
+            "peak_times_s": [_round(t, 4) for t in res.peak_times_s],
+            "depression_by_cycle_kpa": [_round(d, 2) for d in res.depression_by_cycle_kpa],
+            "rpm_by_cycle": [_round(r) for r in res.rpm_by_cycle]}
 
 
 def _pressure_findings(ch: Channel, res: cap.PressureResult) -> list[dict[str, Any]]:
@@ -237,7 +239,12 @@ def _current_summary(res: cap.CurrentResult, order: tuple[int, ...]) -> dict[str
             "first_hump_s": _round(float(res.hump_times_s[0]), 4),
             "first_used_hump_s": _round(float(res.hump_times_s[first]), 4),
             "hump_height_a": {str(c): _round(h) for c, h in res.height_a.items()},
-            "relative_pct": {str(c): _round(p) for c, p in res.relative_pct.items()}}
+            "relative_pct": {str(c): _round(p) for c, p in res.relative_pct.items()},
+            "hump_times_s": [_round(float(t), 4) for t in res.hump_times_s],
+            "hump_cylinders": [int(c) for c in res.hump_cylinders],
+            "hump_heights_a": [_round(float(h)) for h in res.hump_heights_a],
+            "rpm_by_hump": [_round(float(r)) for r in
+                            120.0 / (len(order) * np.diff(res.hump_times_s))] if order else []}
 
 
 # -- the store --------------------------------------------------------------------------------
@@ -335,7 +342,8 @@ def capture_test(engine: Engine, path: Path | str, fleet_no: str, tested_at: dat
                  time_unit: str = "s", firing_order: tuple[int, ...] | None = None,
                  first_hump: int | None = None, idle_rpm: float | None = None,
                  conditions: dict[str, str] | None = None, by: str | None = None,
-                 dry_run: bool = False, progress: Progress | None = None) -> CaptureReport:
+                 dry_run: bool = False, progress: Progress | None = None,
+                 name: str | None = None) -> CaptureReport:
     """Read a capture, derive its readings into a new test, and store the capture with it.
 
     :param engine: the store.
@@ -355,10 +363,92 @@ def capture_test(engine: Engine, path: Path | str, fleet_no: str, tested_at: dat
     :param by: who logs it (default: the operating-system user).
     :param dry_run: derive and validate; write nothing.
     :param progress: called with (bytes read, file size) while reading.
+    :param name: what messages and the store call the file (default: its path), e.g. the
+        name of a file uploaded through the dashboard.
     :raises InvalidInput: naming the file, line and column of what is wrong.
     """
-    path = Path(path)
+    prep = _prepare(engine, Path(path), fleet_no, tested_at, hours, channels,
+                    time_column=time_column, time_unit=time_unit, firing_order=firing_order,
+                    first_hump=first_hump, idle_rpm=idle_rpm, conditions=conditions, by=by,
+                    progress=progress, name=name)
+    report = prep.report
+    if dry_run:
+        return report
+    test_id = log_test(engine, fleet_no, tested_at, hours, report.analysis.readings,
+                       conditions=report.conditions, by=prep.by, source="capture",
+                       source_name=prep.source_name)
+    assert test_id is not None
+    try:
+        report.capture_id = _store(engine, test_id, prep.data, channels, report.analysis,
+                                   prep.blob, prep.by, report.firing_order, prep.baro_kpa,
+                                   first_hump)
+        if prep.save_order and firing_order is not None:
+            with engine.begin() as conn:
+                conn.execute(text("INSERT INTO firing_order (family_id, firing_order, "
+                                  "created_at, created_by) VALUES (:f, :o, :at, :by)"),
+                             {"f": prep.family_id, "o": "-".join(map(str, firing_order)),
+                              "at": stamp(conn), "by": prep.by})
+            report.firing_order_saved = True
+    except Exception as exc:
+        # Never leave derived readings in the analysis without the capture they came from.
+        from fleetdb.logbook import void_test
+
+        void_test(engine, test_id, f"its capture {prep.file_name} could not be stored: "
+                  f"{type(exc).__name__}", prep.by)
+        raise FleetDBError(f"{prep.file_name}: the capture could not be stored ({exc}); test "
+                           f"{test_id} was voided so its readings stay out of the analysis; "
+                           "log the capture again") from exc
+    report.test_id = test_id
+    return report
+
+
+def preview_capture(engine: Engine, path: Path | str, fleet_no: str,
+                    tested_at: datetime | str, hours: float | str,
+                    channels: Sequence[Channel], **options: Any
+                    ) -> tuple[CaptureReport, StoredCapture]:
+    """What :func:`capture_test` would log, and the capture as it would be kept; no writes.
+
+    The same reading, checks and derivations as ``capture_test(..., dry_run=True)``; the
+    samples come back too (as :class:`StoredCapture` with no ids), so they can be drawn
+    before the technician saves.
+
+    :param options: the keyword options of :func:`capture_test` (not ``dry_run``).
+    :raises InvalidInput: naming the file, line and column of what is wrong.
+    """
+    prep = _prepare(engine, Path(path), fleet_no, tested_at, hours, channels, **options)
+    report = prep.report
+    shown = StoredCapture(
+        capture_id=None, test_id=None, file_name=prep.file_name, time_s=prep.data.time_s,
+        raw=prep.data.raw,
+        channel_map=_channel_map(prep.data, channels, report.firing_order, prep.baro_kpa,
+                                 options.get("first_hump")),
+        derived=_derived(report.analysis))
+    return report, shown
+
+
+@dataclass
+class _Prepared:
+    report: CaptureReport
+    data: CaptureData
+    blob: bytes
+    by: str
+    baro_kpa: float
+    family_id: int
+    save_order: bool
+    file_name: str
+    source_name: str
+
+
+def _prepare(engine: Engine, path: Path, fleet_no: str, tested_at: datetime | str,
+             hours: float | str, channels: Sequence[Channel], *, time_column: str = "t",
+             time_unit: str = "s", firing_order: tuple[int, ...] | None = None,
+             first_hump: int | None = None, idle_rpm: float | None = None,
+             conditions: dict[str, str] | None = None, by: str | None = None,
+             progress: Progress | None = None, name: str | None = None) -> _Prepared:
+    """Everything of :func:`capture_test` short of writing: read, derive, check, compress."""
     by = by or current_user()
+    shown_name = name or str(path)
+    file_name = Path(shown_name).name
     conditions = {k: str(v) for k, v in (conditions or {}).items() if v not in (None, "")}
     with engine.connect() as conn:
         unit = _unit_row(conn, fleet_no)
@@ -367,9 +457,9 @@ def capture_test(engine: Engine, path: Path | str, fleet_no: str, tested_at: dat
         raise InvalidValue(f"firing order {'-'.join(map(str, firing_order))} does not name the "
                            f"{unit['cylinders']} cylinders of {fleet_no}'s engine")
     order = firing_order or stored
-    _check_map(str(path), channels, unit["cylinders"], order, first_hump)
+    _check_map(shown_name, channels, unit["cylinders"], order, first_hump)
     data = capture_files.read_capture(path, time_column, [c.column for c in channels],
-                                      time_unit=time_unit, progress=progress)
+                                      time_unit=time_unit, progress=progress, name=shown_name)
     with engine.connect() as conn:
         before = conn.execute(text("SELECT id, test_id FROM capture WHERE content_sha256 = :h"),
                               {"h": data.sha256}).first()
@@ -386,8 +476,7 @@ def capture_test(engine: Engine, path: Path | str, fleet_no: str, tested_at: dat
     if analysis.crank_rpm is not None and "crank_rpm" not in conditions:
         conditions["crank_rpm"] = f"{analysis.crank_rpm:.0f}"
     uses_order = any(c.kind == "current" for c in channels)
-    save_order = uses_order and firing_order is not None and firing_order != stored
-    source_name = f"{path.name} (derived readings)"
+    source_name = f"{file_name} (derived readings)"
     log_test(engine, fleet_no, tested_at, hours, analysis.readings, conditions=conditions,
              by=by, source="capture", source_name=source_name, dry_run=True)
     blob = encode_samples(data.time_s, data.raw)
@@ -396,45 +485,32 @@ def capture_test(engine: Engine, path: Path | str, fleet_no: str, tested_at: dat
                            firing_order=order if uses_order else None,
                            firing_order_saved=False, data_bytes=len(blob),
                            file_bytes=data.file_bytes, conditions=conditions)
-    if dry_run:
-        return report
-    test_id = log_test(engine, fleet_no, tested_at, hours, analysis.readings,
-                       conditions=conditions, by=by, source="capture", source_name=source_name)
-    assert test_id is not None
-    try:
-        report.capture_id = _store(engine, test_id, data, channels, analysis, blob, by,
-                                   order if uses_order else None, baro, first_hump)
-        if save_order:
-            with engine.begin() as conn:
-                conn.execute(text("INSERT INTO firing_order (family_id, firing_order, "
-                                  "created_at, created_by) VALUES (:f, :o, :at, :by)"),
-                             {"f": unit["family_id"], "o": "-".join(map(str, firing_order)),
-                              "at": stamp(conn), "by": by})
-            report.firing_order_saved = True
-    except Exception as exc:
-        # Never leave derived readings in the analysis without the capture they came from.
-        from fleetdb.logbook import void_test
+    return _Prepared(report=report, data=data, blob=blob, by=by, baro_kpa=baro,
+                     family_id=unit["family_id"],
+                     save_order=uses_order and firing_order is not None and firing_order != stored,
+                     file_name=file_name, source_name=source_name)
 
-        void_test(engine, test_id, f"its capture {path.name} could not be stored: "
-                  f"{type(exc).__name__}", by)
-        raise FleetDBError(f"{path.name}: the capture could not be stored ({exc}); test "
-                           f"{test_id} was voided so its readings stay out of the analysis; "
-                           "log the capture again") from exc
-    report.test_id = test_id
-    return report
+
+def _channel_map(data: CaptureData, channels: Sequence[Channel], order: tuple[int, ...] | None,
+                 baro_kpa: float, first_hump: int | None) -> dict[str, Any]:
+    return {"channels": [asdict(c) for c in channels],
+            "firing_order": None if order is None else "-".join(map(str, order)),
+            "first_hump": first_hump, "baro_kpa": round(baro_kpa, 3),
+            "ignored_columns": data.ignored}
+
+
+def _derived(analysis: CaptureAnalysis) -> dict[str, Any]:
+    return {"channels": analysis.channels, "findings": analysis.findings,
+            "crank_rpm": _round(analysis.crank_rpm),
+            "readings": [asdict(r) for r in analysis.readings]}
 
 
 def _store(engine: Engine, test_id: int, data: CaptureData, channels: Sequence[Channel],
            analysis: CaptureAnalysis, blob: bytes, by: str, order: tuple[int, ...] | None,
            baro_kpa: float, first_hump: int | None) -> int:
     s = analysis.sampling
-    channel_map = {"channels": [asdict(c) for c in channels],
-                   "firing_order": None if order is None else "-".join(map(str, order)),
-                   "first_hump": first_hump, "baro_kpa": round(baro_kpa, 3),
-                   "ignored_columns": data.ignored}
-    derived = {"channels": analysis.channels, "findings": analysis.findings,
-               "crank_rpm": _round(analysis.crank_rpm),
-               "readings": [asdict(r) for r in analysis.readings]}
+    channel_map = _channel_map(data, channels, order, baro_kpa, first_hump)
+    derived = _derived(analysis)
     with engine.begin() as conn:
         capture_id = conn.execute(text(
             "INSERT INTO capture (test_id, file_name, content_sha256, file_bytes, samples, "
@@ -458,8 +534,8 @@ def _store(engine: Engine, test_id: int, data: CaptureData, channels: Sequence[C
 class StoredCapture:
     """A capture read back from the store."""
 
-    capture_id: int
-    test_id: int
+    capture_id: int | None  # None for a preview, not stored
+    test_id: int | None
     file_name: str
     time_s: np.ndarray
     raw: dict[str, np.ndarray]
@@ -506,3 +582,32 @@ def captures_of_test(engine: Engine, test_id: int) -> list[dict[str, Any]]:
              "sample_rate_hz": float(r[3]), "duration_s": float(r[4]),
              "stored_bytes": int(r[5]), "channel_map": json.loads(r[6]),
              "derived": json.loads(r[7])} for r in rows]
+
+
+def captures_of_unit(engine: Engine, fleet_no: str) -> list[dict[str, Any]]:
+    """The captures kept with a unit's tests (without their samples), newest test first.
+
+    Each: ``capture_id, test_id, tested_at`` (ISO text), ``hours, voided, file_name, samples,
+    sample_rate_hz, duration_s, channels`` (``[{column, kind, cylinder}]``).
+
+    :param fleet_no: the unit.
+    :raises UnitNotFound: no such unit.
+    """
+    with engine.connect() as conn:
+        _unit_row(conn, fleet_no)
+        rows = conn.execute(text(
+            "SELECT c.id, c.test_id, t.tested_at, t.hours, v.test_id IS NOT NULL, c.file_name, "
+            "c.samples, c.sample_rate_hz, c.duration_s, c.channel_map_json FROM capture c "
+            "JOIN test t ON t.id = c.test_id JOIN unit u ON u.id = t.unit_id "
+            "LEFT JOIN test_void v ON v.test_id = t.id WHERE u.fleet_no = :f "
+            "ORDER BY t.tested_at DESC, c.id DESC"), {"f": fleet_no.strip()}).all()
+    out = []
+    for r in rows:
+        tested = r[2] if isinstance(r[2], str) else r[2].isoformat(sep=" ")
+        channels = [{k: c[k] for k in ("column", "kind", "cylinder")}
+                    for c in json.loads(r[9])["channels"]]
+        out.append({"capture_id": int(r[0]), "test_id": int(r[1]), "tested_at": tested[:19],
+                    "hours": float(r[3]), "voided": bool(r[4]), "file_name": r[5],
+                    "samples": int(r[6]), "sample_rate_hz": float(r[7]),
+                    "duration_s": float(r[8]), "channels": channels})
+    return out
