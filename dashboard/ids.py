@@ -137,3 +137,45 @@ def plan_closed(index: Any) -> dict[str, Any]:
     :param index: the site name, or a wildcard.
     """
     return {"type": _PLAN_CLOSED_TYPE, "index": index}
+
+# -- Captures (Unit history and Log a test) ---------------------------------------------
+UNIT_CAPTURE_PANEL = "unit-capture-panel"
+UNIT_CAPTURE_PICK = "unit-capture-pick"
+UNIT_CAPTURE_SUMMARY = "unit-capture-summary"
+UNIT_CAPTURE_WAVEFORM = "unit-capture-waveform"
+UNIT_CAPTURE_EVENTS = "unit-capture-events"
+LOG_SOURCE = "log-source"
+LOG_TYPED_PART = "log-typed-part"
+LOG_CAPTURE_PART = "log-capture-part"
+LOG_CAPTURE_UPLOAD = "log-capture-upload"
+LOG_CAPTURE_FILE = "log-capture-file"
+LOG_CAPTURE_KEY = "log-capture-key"
+LOG_CAPTURE_MAP = "log-capture-map"
+LOG_CAPTURE_FIRING = "log-capture-firing"
+LOG_CAPTURE_FIRST_HUMP = "log-capture-first-hump"
+LOG_CAPTURE_PREVIEW = "log-capture-preview"
+LOG_CAPTURE_PREVIEW_OUT = "log-capture-preview-out"
+LOG_CAPTURE_SUMMARY = "log-capture-summary"
+LOG_CAPTURE_WAVEFORM = "log-capture-waveform"
+LOG_CAPTURE_EVENTS = "log-capture-events"
+LOG_CAPTURE_SAVE = "log-capture-save"
+LOG_CAPTURE_SAVE_RESULT = "log-capture-save-result"
+LOG_CAPTURE_VERDICT = "log-capture-verdict"
+LOG_CAPTURE_VERDICT_PANEL = "log-capture-verdict-panel"
+
+#: The fields of one column's row in the Log page's channel map.
+CAPTURE_MAP_FIELDS = ("role", "cylinder", "unit", "slope", "offset")
+
+
+def log_capture_field(name: str, index: Any) -> dict[str, Any]:
+    """The id of one control of a column's row in the capture's channel map.
+
+    :param name: one of :data:`CAPTURE_MAP_FIELDS`.
+    :param index: the column's position in the header, or a wildcard (``ALL``, ``MATCH``).
+    """
+    assert name in CAPTURE_MAP_FIELDS
+    return {"type": f"log-capture-{name}", "index": index}
+LOG_READINGS_PANEL = "log-readings-panel"
+LOG_VACUUM_PANEL = "log-vacuum-panel"
+LOG_TYPED_ACTIONS = "log-typed-actions"
+LOG_CAPTURE_ACTIONS = "log-capture-actions"

@@ -6,9 +6,19 @@ from datetime import datetime
 from typing import Any
 
 import dash
-from dash import ALL, Input, Output, State, callback, dcc, html
+from dash import ALL, MATCH, Input, Output, State, callback, ctx, dcc, html
 
-from dashboard import components, data, figures, ids
+from dashboard import (
+    capture_components,
+    capture_data,
+    capture_figures,
+    components,
+    data,
+    figures,
+    ids,
+)
+from dashboard.capture_components import capture_actions, capture_part
+from fleetdb.errors import FleetDBError
 
 dash.register_page(__name__, path="/log", name="Log a test", title="Log a test · fleetdb",
                    order=2)
@@ -67,13 +77,21 @@ def layout(**_query: Any) -> html.Div:
                 html.Div(id=ids.LOG_UNIT_SUMMARY, className="unit-summary"),
             ], className="panel"),
             html.Section([
+                html.H2("Readings come from"),
+                _radio(ids.LOG_SOURCE, [
+                    {"label": "typed in, value by value", "value": "typed"},
+                    {"label": "a capture file (pressure transducer, vacuum transducer or "
+                              "starter-current clamp)", "value": "capture"}], "typed"),
+            ], className="panel"),
+            html.Section([
                 html.H2("Readings"),
                 components.field("What was measured", _radio(ids.LOG_KIND, kinds, "compression")),
                 components.field("Pressure unit", _radio(ids.LOG_PRESSURE_UNIT,
                                                          list(data.PRESSURE_UNITS), "psi")),
                 html.Div(id=ids.LOG_BLOCK_CAPTION, className="hint"),
                 html.Div(id=ids.LOG_BLOCK, className="engine-block"),
-            ], className="panel"),
+            ], id=ids.LOG_READINGS_PANEL, className="panel"),
+            capture_part(),
             html.Section([
                 html.H2("When and how"),
                 html.Div([
@@ -104,17 +122,21 @@ def layout(**_query: Any) -> html.Div:
                 ], className="field-grid"),
                 components.field("Vacuum unit", _radio(ids.LOG_VACUUM_UNIT,
                                                        list(data.VACUUM_UNITS), "inHg")),
-            ], className="panel"),
+            ], id=ids.LOG_VACUUM_PANEL, className="panel"),
             html.Section([
                 html.H2("Who and why"),
                 html.Div([components.field("Technician", _text_input(ids.LOG_TECHNICIAN)),
                           components.field("Note", _text_input(ids.LOG_NOTE))],
                          className="field-grid"),
             ], className="panel"),
-            html.Div(id=ids.LOG_CHECK, className="check", **{"aria-live": "polite"}),
-            html.Button("Save test", id=ids.LOG_SAVE, n_clicks=0, className="button-primary"),
-            html.Div(id=ids.LOG_SAVE_RESULT, **{"aria-live": "polite"}),
-            html.Div(id=ids.LOG_VERDICT),
+            html.Div([
+                html.Div(id=ids.LOG_CHECK, className="check", **{"aria-live": "polite"}),
+                html.Button("Save test", id=ids.LOG_SAVE, n_clicks=0,
+                            className="button-primary"),
+                html.Div(id=ids.LOG_SAVE_RESULT, **{"aria-live": "polite"}),
+                html.Div(id=ids.LOG_VERDICT),
+            ], id=ids.LOG_TYPED_ACTIONS),
+            capture_actions(),
         ], className="log-form"),
             components.safety_panel(ids.LOG_SAFETY)], className="log-grid"),
     ])
@@ -209,3 +231,117 @@ def saved_verdict(url: str, result: data.SaveResult, form: dict[str, Any]) -> An
                                      minimum_kpa=dry[1],
                                      title="This test, sea-level equivalent"))
     return components.verdict_panel(result.verdict, unit, ids.LOG_VERDICT_PANEL, graph)
+
+
+# -- a capture instead of typed readings ----------------------------------------------------------
+
+@callback(Output(ids.LOG_READINGS_PANEL, "hidden"), Output(ids.LOG_VACUUM_PANEL, "hidden"),
+          Output(ids.LOG_TYPED_ACTIONS, "hidden"), Output(ids.LOG_CAPTURE_PART, "hidden"),
+          Output(ids.LOG_CAPTURE_ACTIONS, "hidden"), Input(ids.LOG_SOURCE, "value"))
+def _choose_source(source: str) -> tuple[bool, bool, bool, bool, bool]:
+    typed = source != "capture"
+    return not typed, not typed, not typed, typed, typed
+
+
+@callback(Output(ids.LOG_CAPTURE_KEY, "data"), Output(ids.LOG_CAPTURE_FILE, "children"),
+          Output(ids.LOG_CAPTURE_MAP, "children"), Input(ids.LOG_CAPTURE_UPLOAD, "contents"),
+          State(ids.LOG_CAPTURE_UPLOAD, "filename"), prevent_initial_call=True)
+def _receive_capture(contents: str | None, filename: str | None) -> tuple[Any, Any, Any]:
+    try:
+        upload = capture_data.receive_upload(contents or "", filename or "capture.csv")
+    except FleetDBError as exc:
+        problems = [(p.where, p.message) for p in capture_data.problems_of(exc)]
+        return None, components.problem_list("Upload refused: nothing kept", problems), None
+    kept = upload.to_store()
+    return kept, capture_components.upload_text(kept), capture_components.map_table(kept)
+
+
+@callback(Output(ids.log_capture_field("unit", MATCH), "options"),
+          Output(ids.log_capture_field("unit", MATCH), "value"),
+          Output(ids.log_capture_field("cylinder", MATCH), "disabled"),
+          Input(ids.log_capture_field("role", MATCH), "value"),
+          State(ids.log_capture_field("unit", MATCH), "value"))
+def _units_of_role(role: str, unit: str | None) -> tuple[Any, Any, bool]:
+    options = capture_components.unit_options(role or "ignore")
+    values = [o["value"] for o in options]
+    return options, (unit if unit in values else values[0] if values else None), \
+        role != "pressure"
+
+
+def _capture_form(form: dict[str, Any], cylinder_ids: list[dict[str, Any]],
+                  upload: dict[str, Any] | None, rows: dict[str, list[Any]],
+                  firing: str | None, first_hump: str | None) -> capture_data.CaptureForm:
+    """The page's values as a :class:`capture_data.CaptureForm` (rows in header order)."""
+    by_index = [dict(zip(ids.CAPTURE_MAP_FIELDS, values, strict=True))
+                for values in zip(*(rows[name] for name in ids.CAPTURE_MAP_FIELDS),
+                                  strict=True)]
+    return capture_data.CaptureForm(upload=upload or {}, rows=by_index,
+                                    entry=_entry(form, cylinder_ids), firing_order=firing,
+                                    first_hump=first_hump)
+
+
+def _capture_state() -> dict[str, Any]:
+    return {"form": _form(State), "cylinder_ids": State(ids.log_cylinder(ALL), "id"),
+            "upload": State(ids.LOG_CAPTURE_KEY, "data"),
+            "rows": {name: State(ids.log_capture_field(name, ALL), "value")
+                     for name in ids.CAPTURE_MAP_FIELDS},
+            "firing": State(ids.LOG_CAPTURE_FIRING, "value"),
+            "first_hump": State(ids.LOG_CAPTURE_FIRST_HUMP, "value")}
+
+
+@callback(Output(ids.LOG_CAPTURE_PREVIEW_OUT, "children"),
+          inputs={"clicks": Input(ids.LOG_CAPTURE_PREVIEW, "n_clicks"),
+                  "fresh": Input(ids.LOG_CAPTURE_KEY, "data")},
+          state=_capture_state(), prevent_initial_call=True)
+def _preview_capture(clicks: int, fresh: Any, form: dict[str, Any], cylinder_ids: list[Any],
+                     upload: dict[str, Any] | None, rows: dict[str, list[Any]],
+                     firing: str | None, first_hump: str | None) -> Any:
+    if ctx.triggered_id != ids.LOG_CAPTURE_PREVIEW:
+        return None  # a new file: the old preview no longer applies
+    if not upload:
+        return components.problem_list("No preview", [("Capture file", "upload a capture "
+                                                       "CSV first")])
+    entry = _capture_form(form, cylinder_ids, upload, rows, firing, first_hump)
+    outcome = capture_data.preview(data.current_url(), entry)
+    if outcome.report is None:
+        return components.problem_list("Cannot derive readings: check the map and the test",
+                                       [(p.where, p.message) for p in outcome.problems])
+    unit = form["pressure_unit"]
+    shown = outcome.shown
+    return html.Div([
+        html.H3("Preview: nothing is saved yet"),
+        capture_components.capture_summary(
+            capture_data.report_head(outcome.report), shown.derived, outcome.described,
+            outcome.report["readings"], unit, ids.LOG_CAPTURE_SUMMARY),
+        dcc.Graph(id=ids.LOG_CAPTURE_WAVEFORM, config={"displaylogo": False},
+                  figure=capture_figures.waveform(capture_data.traces(shown), shown.derived,
+                                                  unit, title="Waveform (preview)")),
+        dcc.Graph(id=ids.LOG_CAPTURE_EVENTS, config={"displaylogo": False},
+                  figure=capture_figures.events(shown.derived, unit)),
+    ], className="capture-preview")
+
+
+@callback(Output(ids.LOG_CAPTURE_SAVE_RESULT, "children"),
+          Output(ids.LOG_CAPTURE_VERDICT, "children"),
+          inputs={"clicks": Input(ids.LOG_CAPTURE_SAVE, "n_clicks")}, state=_capture_state(),
+          prevent_initial_call=True)
+def _save_capture(clicks: int, form: dict[str, Any], cylinder_ids: list[Any],
+                  upload: dict[str, Any] | None, rows: dict[str, list[Any]],
+                  firing: str | None, first_hump: str | None) -> tuple[Any, Any]:
+    if not upload:
+        return components.problem_list("Not saved: nothing was written",
+                                       [("Capture file", "upload a capture CSV first")]), None
+    entry = _capture_form(form, cylinder_ids, upload, rows, firing, first_hump)
+    outcome = capture_data.save(data.current_url(), entry)
+    if outcome.report is None:
+        return components.problem_list("Not saved: nothing was written",
+                                       [(p.where, p.message) for p in outcome.problems]), None
+    report = outcome.report
+    saved = html.P([f"✓ Saved as test {report['test_id']} for {report['fleet_no']} with "
+                    f"capture {report['capture_id']}. ",
+                    dcc.Link("See it on the unit's history", href=(
+                        f"/unit?fleet_no={report['fleet_no']}&capture={report['capture_id']}"))],
+                   className="ok saved")
+    verdict = None if outcome.verdict is None else components.verdict_panel(
+        outcome.verdict, form["pressure_unit"], ids.LOG_CAPTURE_VERDICT_PANEL)
+    return saved, verdict

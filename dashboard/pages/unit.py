@@ -6,9 +6,17 @@ import datetime as dt
 from typing import Any
 
 import dash
-from dash import Input, Output, State, callback, dcc, html
+from dash import Input, Output, Patch, State, callback, ctx, dcc, html
 
-from dashboard import components, data, figures, ids
+from dashboard import (
+    capture_components,
+    capture_data,
+    capture_figures,
+    components,
+    data,
+    figures,
+    ids,
+)
 from fleetdb.errors import UnitNotFound
 
 dash.register_page(__name__, path="/unit", name="Unit history", title="Unit history · fleetdb",
@@ -23,8 +31,10 @@ def _radio(component_id: str, options: list[Any], value: str) -> dcc.RadioItems:
                           className="radio")
 
 
-def layout(fleet_no: str | None = None, as_of: str | None = None, **_query: Any) -> html.Div:
-    """The page; cheap: the unit is read by the callbacks (``/unit?fleet_no=LT-902``)."""
+def layout(fleet_no: str | None = None, as_of: str | None = None, capture: str | None = None,
+           **_query: Any) -> html.Div:
+    """The page; cheap: the unit is read by the callbacks (``/unit?fleet_no=LT-902``,
+    ``&capture=ID`` to open one of its captures)."""
     day = data.parse_day(as_of) or dt.date.today()
     return html.Div([
         html.H1("Unit history"),
@@ -59,6 +69,7 @@ def layout(fleet_no: str | None = None, as_of: str | None = None, **_query: Any)
             html.Section(dcc.Graph(id=ids.UNIT_VACUUM, config=_GRAPH_CONFIG),
                          className="panel"),
         ], className="chart-pair"),
+        capture_panel(capture),
         html.Section([html.H2("Tests, newest first"), html.Div(id=ids.UNIT_TESTS)],
                      className="panel"),
     ])
@@ -112,3 +123,74 @@ def _draw_spread_and_vacuum(fleet_no: str | None, as_of: str | None) -> tuple[An
         return (figures.message_figure(report, "Spread"),
                 figures.message_figure(report, "Manifold vacuum"))
     return figures.unit_spread(report), figures.unit_vacuum(report)
+
+
+# -- captures ---------------------------------------------------------------------------------
+
+def capture_panel(capture: str | None) -> html.Section:
+    """The recording behind a test: picker, what was derived, waveform, events (hidden until
+    the unit has a capture)."""
+    picked = int(capture) if capture and str(capture).isdigit() else None
+    return html.Section([
+        html.H2("Capture of a test"),
+        components.field("Capture", dcc.Dropdown(id=ids.UNIT_CAPTURE_PICK, value=picked,
+                                                 options=[], clearable=False),
+                         class_name="field filter filter-wide"),
+        html.Div(id=ids.UNIT_CAPTURE_SUMMARY),
+        dcc.Graph(id=ids.UNIT_CAPTURE_WAVEFORM, config=_GRAPH_CONFIG),
+        html.P("Drag across the waveform to zoom (the zoomed window is drawn again from every "
+               "sample); double-click to see it all. Triangles mark the compression events "
+               "fleetdb found, numbered; the dotted line is the intake-stroke depression; "
+               "numbers over the starter current name the cylinder of each hump.",
+               className="hint"),
+        dcc.Graph(id=ids.UNIT_CAPTURE_EVENTS, config=_GRAPH_CONFIG),
+    ], id=ids.UNIT_CAPTURE_PANEL, className="panel", hidden=True)
+
+
+@callback(Output(ids.UNIT_CAPTURE_PICK, "options"), Output(ids.UNIT_CAPTURE_PICK, "value"),
+          Output(ids.UNIT_CAPTURE_PANEL, "hidden"), Input(ids.UNIT_PICK, "value"),
+          State(ids.UNIT_CAPTURE_PICK, "value"))
+def _offer_captures(fleet_no: str | None, picked: int | None) -> tuple[Any, Any, bool]:
+    try:
+        rows = capture_data.captures_of_unit(data.current_url(), fleet_no) if fleet_no else []
+    except UnitNotFound:
+        rows = []
+    options = [{"label": capture_data.capture_label(r), "value": r["capture_id"]} for r in rows]
+    known = [r["capture_id"] for r in rows]
+    return options, (picked if picked in known else known[0] if known else None), not rows
+
+
+@callback(Output(ids.UNIT_CAPTURE_SUMMARY, "children"), Output(ids.UNIT_CAPTURE_EVENTS, "figure"),
+          Input(ids.UNIT_CAPTURE_PICK, "value"), Input(ids.UNIT_PRESSURE_UNIT, "value"))
+def _describe_capture(capture_id: int | None, unit: str) -> tuple[Any, Any]:
+    if capture_id is None:
+        return None, figures.message_figure("No capture picked.", "Events")
+    shown = capture_data.stored_capture(data.current_url(), int(capture_id))
+    described = {c["column"]: capture_data.describe(c) for c in shown.channel_map["channels"]}
+    head = capture_data.stored_head(shown)
+    summary = capture_components.capture_summary(
+        head, shown.derived, described, capture_components.stored_readings(shown.derived), unit,
+        ids.UNIT_CAPTURE_SUMMARY + "-body")
+    return summary, capture_figures.events(shown.derived, unit)
+
+
+@callback(Output(ids.UNIT_CAPTURE_WAVEFORM, "figure"), Input(ids.UNIT_CAPTURE_PICK, "value"),
+          Input(ids.UNIT_PRESSURE_UNIT, "value"),
+          Input(ids.UNIT_CAPTURE_WAVEFORM, "relayoutData"))
+def _draw_waveform(capture_id: int | None, unit: str, relayout: dict[str, Any] | None) -> Any:
+    if capture_id is None:
+        return figures.message_figure("No capture picked.", "Waveform")
+    shown = capture_data.stored_capture(data.current_url(), int(capture_id))
+    window = capture_data.zoom_window(relayout)
+    if ctx.triggered_id == ids.UNIT_CAPTURE_WAVEFORM:
+        if window is None:
+            return dash.no_update
+        # Only the channels' points change; uirevision keeps the zoom the user chose.
+        patch = Patch()
+        for i, trace in enumerate(capture_data.traces(shown, *window)):
+            patch["data"][i]["x"] = trace.time_s.tolist()
+            patch["data"][i]["y"] = capture_figures.scaled(trace.kind, trace.values,
+                                                           unit).tolist()
+        return patch
+    return capture_figures.waveform(capture_data.traces(shown), shown.derived, unit,
+                                    revision=capture_id)
