@@ -198,7 +198,7 @@ def events(derived: dict[str, Any], unit: str) -> go.Figure:
     if pressure:
         fig.add_hline(y=float(from_kpa(limit.kpa, vac)), line={"color": _LIMIT, "dash": "dash"},
                       row=1, col=2, annotation_text=f"{limit.value:g} {limit.unit}, throttle "
-                      f"open ({limit.ref})", annotation_position="top left",
+                      "open (default)", annotation_position="top left",
                       annotation={"font": {"size": 11, "color": _LIMIT},
                                   "bgcolor": "rgba(255,255,255,0.85)"})
     else:
