@@ -268,6 +268,11 @@ def _unit_table(fr: Frames, as_of: pd.Timestamp, fits: pd.DataFrame) -> pd.DataF
         units.index) * 1000
     units["interval_days"] = fr.families["test_interval_days"].reindex(
         units["family_id"]).to_numpy()
+    # Which version of its family's limits each unit is judged by (frames built by hand
+    # may leave it out).
+    versions = fr.families.get("limits_version")
+    units["limits_version"] = (np.nan if versions is None
+                               else versions.reindex(units["family_id"]).to_numpy(float))
     return units
 
 

@@ -85,8 +85,9 @@ def print_table(rows: list[dict[str, Any]], columns: list[tuple[str, str]]) -> N
 
 class FleetGroup(click.Group):
     """The ``fleetdb`` group: the commands defined here, plus those of the sibling modules
-    (``cli_plan``, ``cli_capture``, ``cli_trust``), loaded when first asked for. Those modules
-    import this one's helpers, so loading them lazily keeps any import order working."""
+    (``cli_plan``, ``cli_capture``, ``cli_trust``, ``cli_family``), loaded when first asked
+    for. Those modules import this one's helpers, so loading them lazily keeps any import
+    order working."""
 
     #: command name -> "module:attribute" of a command defined in a sibling module.
     lazy_commands = {
@@ -95,6 +96,7 @@ class FleetGroup(click.Group):
         "capture": "fleetdb.cli_capture:capture",
         "backup": "fleetdb.cli_trust:backup",
         "restore": "fleetdb.cli_trust:restore",
+        "family": "fleetdb.cli_family:family",
     }
 
     def list_commands(self, ctx: click.Context) -> list[str]:
@@ -395,6 +397,10 @@ def unit(fleet_no: str, unit: str, as_of: Any, as_json: bool, db: str | None) ->
     click.echo(f"Health: {LEVEL_MARK[h['level']]}   projected limit: "
                f"{h['projected_date_early'] or 'none'} (conservative), "
                f"{h['projected_date'] or 'none'} (best estimate)")
+    lim = h.get("limits")
+    if lim:
+        click.echo(f"Judged by limits version {lim['version']} of {data['engine_family']} "
+                   f"(set {lim['set_at']} UTC by {lim['set_by'] or 'unknown'}: {lim['reason']})")
     for r in h["reasons"]:
         click.echo(f"  {r['level']:<6} {r['code']}: {r['text']}")
     wear = [{"cyl": f["cylinder"], "n": f["n"], "slope": f["wear_per_1000h"],

@@ -17,7 +17,7 @@ FLEET_OPTIONAL = (
     "in_service", "hours_per_week", "site_elevation_m", "fuel", "cylinders", "banks",
     "compression_ratio", "min_compression", "compression_units", "min_ratio",
     "expected_compression", "spread_rule", "max_difference", "min_crank_rpm", "warm_test",
-    "system_volts", "test_interval_days",
+    "system_volts", "test_interval_days", "limits_reason",
 )
 TESTS_REQUIRED = ("fleet_no", "tested_at", "hours", "kind", "cylinder", "value", "units")
 TESTS_OPTIONAL = (

@@ -19,7 +19,7 @@ from sqlalchemy import text
 from sqlalchemy.engine import Connection, Engine
 
 from fleetdb import assess as assess_mod
-from fleetdb import fleetfit, frames
+from fleetdb import fleetfit, frames, limits
 from fleetdb.assess import LEVEL_RANK, LEVELS, Assessment
 from fleetdb.ingest import stamp
 from fleetdb.views import unit_id_for
@@ -44,6 +44,10 @@ def _date(value: Any) -> dt.date | None:
 
 def _float(value: Any) -> float | None:
     return None if value is None or pd.isna(value) else float(value)
+
+
+def _int(value: Any) -> int | None:
+    return None if value is None or pd.isna(value) else int(value)
 
 
 def _stored_family_params(conn: Connection, week: dt.date) -> pd.DataFrame | None:
@@ -99,23 +103,24 @@ def _store(conn: Connection, result: Assessment, week: dt.date, day: dt.date,
             "projected_hours_early": _float(u["projected_hours_early"]),
             "projected_date": _date(u["projected_date"]),
             "projected_date_early": _date(u["projected_date_early"]),
-            "wear": _float(u["wear_kpa_per_1000h"]), "at": at})
+            "wear": _float(u["wear_kpa_per_1000h"]), "at": at,
+            "limits_version": _int(u.get("limits_version"))})
     if rows:
         conn.execute(text(
             "INSERT INTO health_snapshot (unit_id, week_start, as_of, level, main_code, "
             "main_text, reasons_json, last_test_id, last_tested_at, last_hours, "
             "projected_hours, projected_hours_early, projected_date, projected_date_early, "
-            "wear_kpa_per_1000h, computed_at) VALUES (:unit_id, :week_start, :as_of, :level, "
-            ":main_code, :main_text, :reasons_json, :last_test_id, :last_tested_at, "
-            ":last_hours, :projected_hours, :projected_hours_early, :projected_date, "
-            ":projected_date_early, :wear, :at) "
+            "wear_kpa_per_1000h, computed_at, limits_version) VALUES (:unit_id, :week_start, "
+            ":as_of, :level, :main_code, :main_text, :reasons_json, :last_test_id, "
+            ":last_tested_at, :last_hours, :projected_hours, :projected_hours_early, "
+            ":projected_date, :projected_date_early, :wear, :at, :limits_version) "
             # Replace this week's row of the unit; two refreshes at once both succeed.
             "ON CONFLICT (unit_id, week_start) DO UPDATE SET " + ", ".join(
                 f"{c} = excluded.{c}" for c in (
                     "as_of", "level", "main_code", "main_text", "reasons_json", "last_test_id",
                     "last_tested_at", "last_hours", "projected_hours", "projected_hours_early",
                     "projected_date", "projected_date_early", "wear_kpa_per_1000h",
-                    "computed_at"))), rows)
+                    "computed_at", "limits_version"))), rows)
     if full:
         _store_family_params(conn, result.family_params, week, at)
 
@@ -253,7 +258,8 @@ def board(engine: Engine, as_of: dt.date | None = None, *, site: str | None = No
         wide = conn.execute(text(
             "SELECT s.unit_id, s.unit_id, u.fleet_no, st.name, f.name, s.level, s.main_code, "
             "s.main_text, s.reasons_json, s.projected_date, s.projected_date_early, "
-            "s.projected_hours, s.projected_hours_early, s.last_tested_at, s.last_hours, p.level "
+            "s.projected_hours, s.projected_hours_early, s.last_tested_at, s.last_hours, p.level, "
+            "s.limits_version "
             + base + "WHERE s.week_start = :w AND s.unit_id IN ("
             + (",".join(str(int(i)) for i in ids) or "NULL") + ")"),
             {"p": previous, "w": week}).all()
@@ -316,7 +322,7 @@ def _board_row(r: Any, day: dt.date, had_previous: bool) -> dict[str, Any]:
         "projected_hours": _float(r[10]), "projected_hours_early": _float(r[11]),
         "hours_to_limit": hours_to_limit, "last_tested_at": _iso(r[12]),
         "last_hours": _float(r[13]), "previous_level": r[14],
-        "change": _change(r[4], r[14], had_previous),
+        "change": _change(r[4], r[14], had_previous), "limits_version": r[15],
     }
 
 
@@ -425,6 +431,7 @@ def unit_report(engine: Engine, fleet_no: str, as_of: dt.date | None = None) -> 
         "projected_date": u["projected_date"], "projected_date_early": u["projected_date_early"],
         "reasons": result.reasons[result.reasons["unit_id"] == uid][
             ["code", "level", "text", "numbers", "test_id"]].to_dict("records"),
+        "limits": limits.describe(engine, int(u["family_id"]), fam.get("limits_version")),
         "tests": tests, "readings": out_readings, "fits": fits,
         "spread": [{"test_id": i, "tested_at": s["tested_at"], "hours": s["hours"],
                     "ratio": s["dry_ratio"], "voided": bool(s["voided"]),
@@ -465,6 +472,8 @@ def test_verdict(engine: Engine, test_id: int) -> dict[str, Any]:
         "lowest_kpa": summ["dry_min_kpa"], "highest_kpa": summ["dry_max_kpa"],
         "ratio": summ["dry_ratio"], "level": result.units.loc[row[0], "level"],
         "previous_level": previous,
+        "limits": limits.describe(engine, int(result.units.loc[row[0], "family_id"]),
+                                  result.units.loc[row[0], "limits_version"]),
         "reasons": result.reasons[result.reasons["unit_id"] == row[0]][
             ["code", "level", "text"]].to_dict("records"),
     })

@@ -13,10 +13,12 @@ from sqlalchemy import (
     Column,
     DateTime,
     Index,
+    Integer,
     MetaData,
     String,
     Text,
     UniqueConstraint,
+    text,
 )
 from sqlmodel import Field, SQLModel
 
@@ -38,6 +40,7 @@ EVENT_KINDS = (
     "overhaul", "head", "valves", "rings", "throttle", "control_module", "hour_meter", "other",
 )
 SPREAD_RULES = ("ratio", "diff", "ratio_mean")
+LIMIT_SOURCES = ("migration", "import", "cli")
 SOURCES = ("form", "cli", "csv", "capture", "demo")
 
 
@@ -87,7 +90,47 @@ class EngineFamily(SQLModel, table=True):
     warm_test: bool = True
     system_volts: int = 12
     test_interval_days: int = 365
+    # The limit columns above are the family's current limits: version ``limits_version``
+    # of its :class:`FamilyLimits` history (written together, in one transaction).
+    limits_version: int = Field(
+        default=1, sa_column=Column(Integer(), nullable=False, server_default=text("1")))
     created_at: datetime = Field(default_factory=_utcnow)
+
+
+class FamilyLimits(SQLModel, table=True):
+    """One version of an engine family's limits: what, who, when, why.
+
+    Never changed or deleted: a change adds the next version, and the family's own limit
+    columns take its values. Health snapshots and verdicts name the version they used.
+    """
+
+    __tablename__ = "family_limits"
+    __table_args__ = (
+        UniqueConstraint("family_id", "version", name="uq_family_limits_family_version"),
+        CheckConstraint("version >= 1", name="version"),
+        CheckConstraint(_in("spread_rule", SPREAD_RULES), name="spread_rule"),
+        CheckConstraint("min_ratio > 0 AND min_ratio <= 1", name="min_ratio"),
+        CheckConstraint(_in("source", LIMIT_SOURCES), name="source"),
+    )
+    id: int | None = Field(default=None, primary_key=True)
+    # No index of its own: the unique (family_id, version) index serves family look-ups.
+    family_id: int = Field(foreign_key="engine_family.id")
+    version: int
+    min_compression_kpa: float
+    min_compression_typed: str = Field(sa_column=Column(String(32), nullable=False))
+    min_compression_unit: str = Field(sa_column=Column(String(8), nullable=False))
+    expected_kpa: float | None = None
+    spread_rule: str = Field(sa_column=Column(String(16), nullable=False))
+    min_ratio: float
+    max_diff_kpa: float | None = None
+    min_crank_rpm: float | None = None
+    warm_test: bool
+    test_interval_days: int
+    reason: str = Field(sa_column=Column(String(500), nullable=False))
+    source: str = Field(sa_column=Column(String(16), nullable=False))
+    batch_id: int | None = Field(default=None, foreign_key="import_batch.id")
+    created_at: datetime = Field(default_factory=_utcnow)
+    created_by: str = Field(sa_column=Column(String(80), nullable=False))
 
 
 class Unit(SQLModel, table=True):
@@ -230,6 +273,7 @@ class HealthSnapshot(SQLModel, table=True):
     projected_date: date | None = None
     projected_date_early: date | None = None
     wear_kpa_per_1000h: float | None = None
+    limits_version: int | None = None  # the family's limits version the level was judged by
     computed_at: datetime = Field(default_factory=_utcnow)
 
 

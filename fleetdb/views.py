@@ -133,6 +133,7 @@ def health_summary(report: dict[str, Any], units: str = "psi") -> dict[str, Any]
         "projected_hours_early": _num(report["projected_hours_early"], 0),
         "hours_per_week": _num(report["unit"]["hours_per_week"]), "units": units,
         "wear": wear, "trust": {str(t["test_id"]): t["trustworthy"] for t in report["tests"]},
+        "limits": report.get("limits"),
     }
 
 

@@ -14,11 +14,12 @@ the values stored as typed and converted by their unit. Formula-injection names 
 through every CSV export (the board's and the overhaul plan's): a text cell starting with
 ``= + - @``, a tab or a carriage return is prefixed with ``'`` (OWASP, "CSV Injection").
 
-Left out on purpose, because each is a known bug in a module this file does not own (see
-``test_known_bugs_*`` at the end, strict xfails that turn red once fixed): non-numeric
-``site_elevation_m`` or ``cylinders`` repeated for a site or engine family already in the
-store (fleetdb/registry.py), a ``min_compression`` text over 32 characters on PostgreSQL
-(registry.py), and a cylinder written ``²=150`` on ``fleetdb log`` (fleetdb/cli.py).
+Left out on purpose, because it is a known bug in a module this file does not own (see
+``test_known_bugs_*`` at the end, a strict xfail that turns red once fixed): a cylinder
+written ``²=150`` on ``fleetdb log`` (fleetdb/cli.py). The fleet-file attributes of a site or
+engine family already in the store are fuzzed like the others: they are validated before
+use, a conflicting attribute of the engine itself (fuel, cylinders...) is refused with its
+line and column, and changed limits become a new limits version.
 
 ``python -m pytest tests/test_fuzz.py -s`` prints how many cases ran and how each ended;
 ``FLEETDB_FUZZ_SCALE=10`` runs ten times as many. Under CI the cases are derandomised (the
@@ -33,19 +34,16 @@ import datetime as dt
 import io
 import math
 import os
-import traceback
 from collections import Counter
 from collections.abc import Iterator
 from typing import Any
 
-import psycopg
 import pytest
 from hypothesis import HealthCheck, assume, event, given, settings
 from hypothesis import strategies as st
 from hypothesis.errors import InvalidArgument
 from sqlalchemy import create_engine, text
 from sqlalchemy.engine import Engine
-from sqlalchemy.exc import DataError
 
 from fleetdb import db, exports, health, ingest, migrate, plan
 from fleetdb.csvfiles import CsvFile, parse_csv_bytes
@@ -174,8 +172,8 @@ def a_tests_file(draw: st.DrawFn) -> tuple[bytes, list[list[str]]]:
     return draw(encoded(as_csv(TESTS_HEADER, rows))), rows
 
 
-COUNTED = ("site", "engine_family", "unit", "test", "reading", "service_event",
-           "import_batch")
+COUNTED = ("site", "engine_family", "family_limits", "unit", "test", "reading",
+           "service_event", "import_batch")
 
 
 def counts(engine: Engine) -> dict[str, int]:
@@ -317,6 +315,8 @@ def test_hostile_tests_files_import_whole_or_not_at_all(store: Engine, db_url: s
 FLEET_HEADER = ["fleet_no", "site", "engine_family", "in_service", "hours_per_week",
                 "site_elevation_m", "fuel", "cylinders", "banks", "compression_ratio",
                 "min_compression", "compression_units", "min_ratio"]
+#: Low Yard's and TEST-L4's attributes as stored from tests/data/fleet.csv.
+KNOWN_ATTRIBUTES = ["5", "lpg", "4", "1-2-3-4", "9.5", "120", "psi", "0.75"]
 #: Names made unique per case (a repeat only makes its rows "already present").
 numbers = st.integers(0, 10**9)
 
@@ -329,12 +329,10 @@ def fleet_file(draw: st.DrawFn) -> tuple[bytes, list[list[str]]]:
         if draw(st.booleans()):  # a new site and family, its attributes on every row
             rows.append([f"FZ-{n}-{i}", f"Fuzz Site {n}", f"FUZZ-{n}", "2021-03-01", "30",
                          "300", "lpg", "4", "1-2-3-4", "9.5", "120", "psi", "0.75"])
-        else:  # known ones: attributes blank (registry.py's known bug: module docstring)
-            rows.append([f"FZ-{n}-{i}", "Low Yard", "TEST-L4", "2021-03-01", "30", *[""] * 8])
+        else:  # known ones (tests/data/fleet.csv): their attributes, or blank
+            rows.append([f"FZ-{n}-{i}", "Low Yard", "TEST-L4", "2021-03-01", "30",
+                         *draw(st.sampled_from([[""] * 8, KNOWN_ATTRIBUTES]))])
     rows = draw(spoiled(rows))
-    for row in rows:  # keep the known bug out (a stray byte may still bring it back)
-        if row[1] == "Low Yard" or row[2] == "TEST-L4":
-            row[5:] = [""] * 8
     return draw(encoded(as_csv(FLEET_HEADER, rows))), rows
 
 
@@ -344,16 +342,7 @@ def test_hostile_fleet_files_import_whole_or_not_at_all(store: Engine, db_url: s
     def case(sample: tuple[bytes, list[list[str]]]) -> None:
         raw, _ = sample
         before = counts(store)
-        try:
-            report = import_bytes(store, raw, "hostile-fleet.csv")
-        except (ValueError, OverflowError) as exc:
-            # registry.py's known bug (module docstring), reached through a stray byte:
-            # a traceback, but still nothing written.
-            assert traceback.extract_tb(exc.__traceback__)[-1].filename.endswith(
-                "registry.py"), exc
-            assert counts(store) == before
-            outcome("known registry.py bug, nothing written")
-            return
+        report = import_bytes(store, raw, "hostile-fleet.csv")
         if report is None or report.outcome == "already_imported":
             return
         rows = rows_of(raw, len(FLEET_HEADER))
@@ -362,6 +351,8 @@ def test_hostile_fleet_files_import_whole_or_not_at_all(store: Engine, db_url: s
         assert after["site"] - before["site"] == report.written["sites"]
         assert after["engine_family"] - before["engine_family"] == report.written[
             "engine families"]
+        assert after["family_limits"] - before["family_limits"] == report.written[
+            "engine families"] + report.written.get("limit versions", 0)
         with store.connect() as conn:
             stored = {f.strip() for f in conn.execute(text("SELECT fleet_no FROM unit")
                                                       ).scalars()}
@@ -597,28 +588,43 @@ def sqlite_store(sqlite_url: str) -> Iterator[Engine]:
     engine.dispose()
 
 
-@pytest.mark.xfail(strict=True, raises=(ValueError, OverflowError),
-                   reason="fleetdb/registry.py converts the attributes of a known site or "
-                          "family with float()/int() before the validation's problems are "
-                          "raised")
-@pytest.mark.parametrize("row", ["X-9,Low Yard,TEST-L4,,,abc,,,,,,,",  # site_elevation_m
-                                 "X-9,Low Yard,TEST-L4,,,,,inf,,,,,"])  # cylinders
-def test_known_bugs_registry_attributes_of_a_known_site_or_family(sqlite_store: Engine,
-                                                                  row: str) -> None:
-    assert import_bytes(sqlite_store, (",".join(FLEET_HEADER) + "\n" + row + "\n").encode(),
-                        "known.csv") is None
+@pytest.mark.parametrize(("row", "column", "message"), [
+    ("X-9,Low Yard,TEST-L4,,,abc,,,,,,,", "site_elevation_m", "not elevation in metres"),
+    ("X-9,Low Yard,TEST-L4,,,,,inf,,,,,", "cylinders", "outside the plausible range"),
+    ("X-9,Low Yard,TEST-L4,,,,,1e999,,,,,", "cylinders", "outside the plausible range"),
+    ("X-9,Low Yard,TEST-L4,,,,,,,1_0,,,", "compression_ratio", "not a number"),
+    ("X-9,Low Yard,TEST-L4,,,,diesel,,,,,,", "fuel", "differs from the stored fuel"),
+    ("X-9,Low Yard,TEST-L4,,,,,6,1-2-3-4-5-6,,,,", "cylinders",
+     "differs from the stored cylinders"),
+    ("X-9,Low Yard,TEST-L4,,,,,,,,,kPa,", "min_compression", "give min_compression with"),
+])
+def test_attributes_of_a_known_site_or_family_are_checked(sqlite_store: Engine, row: str,
+                                                         column: str, message: str) -> None:
+    # Formerly a traceback (float()/int() before validation) or, for the fuel, silently
+    # ignored: now a message naming file, line and column, and nothing written.
+    before = counts(sqlite_store)
+    body = (",".join(FLEET_HEADER) + "\n" + row + "\n").encode()
+    with pytest.raises(InvalidInput) as caught:
+        ingest.import_csv(sqlite_store, parse_csv_bytes(body, "known.csv"))
+    problem = caught.value.problems[0]
+    assert (problem.source, problem.line, problem.field) == ("known.csv", 2, column)
+    assert message in problem.message
+    assert counts(sqlite_store) == before
 
 
 @pytest.mark.postgres
-@pytest.mark.xfail(strict=True, raises=(DataError, psycopg.DataError),
-                   reason="fleetdb/registry.py stores min_compression as typed in a "
-                          "32-character column without checking its length")
-def test_known_bugs_registry_long_minimum_on_postgresql(pg_server_url: str) -> None:
+def test_long_minimum_is_refused_on_postgresql(pg_server_url: str) -> None:
+    # Formerly a DataError from PostgreSQL (the store keeps 32 characters of the typed value).
     engine = _empty_pg_store(pg_server_url)
     row = ["X-1", "Low Yard", "NEW-F", "", "", "5", "lpg", "4", "1-2-3-4", "9.5",
            "120." + "0" * 40, "psi", ""]
     try:
-        assert import_bytes(engine, as_csv(FLEET_HEADER, [row]).encode(), "known.csv") is None
+        before = counts(engine)
+        with pytest.raises(InvalidInput, match="column min_compression: 44 characters; at "
+                                               "most 32 are kept"):
+            ingest.import_csv(engine, parse_csv_bytes(as_csv(FLEET_HEADER, [row]).encode(),
+                                                      "known.csv"))
+        assert counts(engine) == before
     finally:
         engine.dispose()
 
