@@ -18,7 +18,12 @@ __all__ = ["family"]
 
 @click.group()
 def family() -> None:
-    """Engine families: their limits and the history of every change."""
+    """Engine families: their limits and the history of every change.
+
+    \b
+    Example:
+        fleetdb family limits TEST-L4 --json
+    """
 
 
 def _limits_text(v: dict[str, Any]) -> str:
