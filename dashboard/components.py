@@ -136,9 +136,19 @@ def verdict_panel(verdict: dict[str, Any], unit: str, panel_id: str,
                className="spread"),
         html.H3("Findings on this test"),
         html.Ul(findings, className="findings"),
+        *_limits_line(verdict.get("limits")),
         *_reasons(verdict.get("reasons") or [], verdict.get("level")),
         *([] if figure is None else [figure]),
     ], className="panel panel-verdict", id=panel_id)
+
+
+def _limits_line(limits: dict[str, Any] | None) -> list[Any]:
+    """Which version of the engine family's limits the test was judged by (if known)."""
+    if not limits:
+        return []
+    return [html.P(f"Judged by the engine family's limits version {limits['version']} "
+                   f"(set {limits['set_at']} UTC by {limits['set_by'] or 'unknown'}: "
+                   f"{limits['reason']})", className="limits-version")]
 
 
 def _reasons(reasons: list[dict[str, Any]], level: str | None) -> list[Any]:

@@ -12,6 +12,7 @@ from click.testing import CliRunner
 from sqlalchemy import text
 from sqlalchemy.engine import Engine
 
+from dashboard import components
 from fleetdb import health, ingest, limits, registry
 from fleetdb.cli import cli
 from fleetdb.errors import InvalidInput
@@ -120,6 +121,9 @@ def test_verdict_board_and_unit_report_name_the_limits_version(store: Engine) ->
     assert after["limits"]["version"] == 2 and after["limits"]["set_by"] == "admin"
     assert after["limits"]["min_compression_kpa"] == pytest.approx(125 * KPA_PER_PSI)
     assert "below_minimum" in {f["code"] for f in after["findings"]}
+    panel = str(components.verdict_panel(after, "psi", "x"))
+    assert "Judged by the engine family's limits version 2" in panel
+    assert "by admin: service data revision C" in panel
     report = health.unit_report(store, "T-101", AS_OF)
     assert report["limits"]["version"] == 2
     assert report["limits"]["reason"] == "service data revision C"
