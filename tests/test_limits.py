@@ -187,3 +187,48 @@ def test_cli_family_limits(store: Engine) -> None:
     assert "no engine family named 'NOPE'" in run("NOPE", code=1)
     unit = CliRunner().invoke(cli, ["unit", "T-201", "--db", url]).output
     assert "Judged by limits version 2 of TEST-V6" in unit
+
+
+#: Text that has broken parsers elsewhere (see tests/test_fuzz.py).
+HOSTILE = ["", " ", "NaN", "inf", "-inf", "1e309", "9" * 400, "0x1F", "1_000", "١٢٠", "１２０",
+           "²", "-0", "0", "1e-320", "=1+1", "'; DROP TABLE family_limits; --", "none",
+           "default", "120 psi", "8.3bar", "3 inHg", "0.8", "200", "yes", "no", "diff",
+           "ratio_mean", "\x00", "x" * 600]
+
+
+def test_hostile_limits_end_in_a_message_or_a_version(engine: Engine) -> None:
+    # Every case is refused with the option named, or kept as exactly one new version
+    # whose values the family row then holds; never a traceback, never half a write.
+    from hypothesis import HealthCheck, given, settings
+    from hypothesis import strategies as st
+
+    from tests.conftest import IN_CI
+
+    ingest.import_files(engine, [DATA / "fleet.csv"], by="importer")
+    fields = st.sampled_from(sorted(set(limits.LIMIT_FIELDS) - {"compression_units"}))
+    text_ = st.sampled_from(HOSTILE) | st.text(max_size=10)
+
+    @settings(max_examples=40, deadline=None, database=None, derandomize=IN_CI,
+              suppress_health_check=[HealthCheck.function_scoped_fixture])
+    @given(st.dictionaries(fields, text_, min_size=1, max_size=3), text_)
+    def case(typed: dict[str, str], reason: str) -> None:
+        before = limits.history(engine, "TEST-V6")
+        try:
+            result = registry.set_limits(engine, "TEST-V6", typed, reason=reason, by="fuzz")
+        except InvalidInput as exc:
+            assert all(p.source == "command line" and p.field and p.field.startswith("--")
+                       for p in exc.problems), exc
+            assert limits.history(engine, "TEST-V6") == before
+            return
+        after = limits.history(engine, "TEST-V6")
+        added = len(after["versions"]) - len(before["versions"])
+        assert added == (1 if result["changed"] else 0)
+        assert after["current_version"] == after["versions"][-1]["version"] == result["version"]
+        with engine.connect() as conn:
+            fam = conn.execute(text("SELECT * FROM engine_family WHERE name = 'TEST-V6'")
+                               ).mappings().one()
+        for col in limits.LIMIT_COLUMNS:
+            want, got = after["versions"][-1][col], fam[col]
+            assert (want == got) if not isinstance(want, float) else got == pytest.approx(want)
+
+    case()
