@@ -347,3 +347,17 @@ def test_save_logs_the_test_like_the_cli_and_keeps_the_capture(
     assert (source, by, name) == ("capture", "QA", "crank.csv")
     again = capture_data.save(store_url, _form(upload, ROLES))
     assert "already stored as capture" in again.problems[0].message
+
+
+def test_changing_the_unit_keeps_the_zoomed_window_at_full_resolution(
+        client: Any, stored: capture_store.CaptureReport) -> None:
+    inputs = [{"id": ids.UNIT_CAPTURE_PICK, "property": "value", "value": stored.capture_id},
+              {"id": ids.UNIT_PRESSURE_UNIT, "property": "value", "value": "psi"},
+              {"id": ids.UNIT_CAPTURE_WAVEFORM, "property": "relayoutData",
+               "value": {"xaxis.range[0]": 2.0, "xaxis.range[1]": 2.2}}]
+    fig = _post(client, ids.UNIT_CAPTURE_WAVEFORM, inputs,
+                changed=f"{ids.UNIT_PRESSURE_UNIT}.value")["response"][
+        ids.UNIT_CAPTURE_WAVEFORM]["figure"]
+    t = _recording()["t"]
+    assert _flat(fig["data"][0]["x"]).size == ((t >= 2.0) & (t <= 2.2)).sum() + 2
+    assert "psi gauge" in str(fig["layout"]["annotations"])

@@ -192,5 +192,7 @@ def _draw_waveform(capture_id: int | None, unit: str, relayout: dict[str, Any] |
             patch["data"][i]["y"] = capture_figures.scaled(trace.kind, trace.values,
                                                            unit).tolist()
         return patch
-    return capture_figures.waveform(capture_data.traces(shown), shown.derived, unit,
+    # A new pressure unit keeps the zoom (uirevision), so draw the zoomed window in full.
+    keep = window if ctx.triggered_id == ids.UNIT_PRESSURE_UNIT and window else (None, None)
+    return capture_figures.waveform(capture_data.traces(shown, *keep), shown.derived, unit,
                                     revision=capture_id)
