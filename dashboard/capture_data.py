@@ -119,11 +119,17 @@ def traces(shown: capture_store.StoredCapture, start_s: float | None = None,
     :param start_s: start of the window, seconds (None: the start).
     :param end_s: end of the window (None: the end).
     """
+    # Only the window's samples are converted (a zoom into a long recording stays quick);
+    # one sample either side is kept so the line reaches the window's edges.
+    t = shown.time_s
+    first = 0 if start_s is None else max(0, int(np.searchsorted(t, start_s)) - 1)
+    stop = t.size if end_s is None else min(t.size, int(np.searchsorted(t, end_s, "right")) + 1)
     out = []
     for spec in shown.channel_map["channels"]:
-        t, y = capture.envelope(shown.time_s, shown.channel_si(spec["column"]),
-                                start_s=start_s, end_s=end_s, buckets=buckets)
-        out.append(Trace(spec["column"], spec["kind"], spec["cylinder"], t, y))
+        times, values = capture.envelope(t[first:stop],
+                                         shown.channel_si(spec["column"], first, stop),
+                                         buckets=buckets)
+        out.append(Trace(spec["column"], spec["kind"], spec["cylinder"], times, values))
     return out
 
 

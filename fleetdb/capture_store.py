@@ -542,10 +542,15 @@ class StoredCapture:
     channel_map: dict[str, Any]
     derived: dict[str, Any]
 
-    def channel_si(self, column: str) -> np.ndarray:
-        """A channel in fleetdb's SI for its kind (gauge kPa, kPa below ambient, A)."""
+    def channel_si(self, column: str, first: int = 0, stop: int | None = None) -> np.ndarray:
+        """A channel in fleetdb's SI for its kind (gauge kPa, kPa below ambient, A).
+
+        :param first: the first sample wanted (a window converts only its own samples).
+        :param stop: one past the last sample wanted (None: to the end).
+        """
         spec = next(c for c in self.channel_map["channels"] if c["column"] == column)
-        return cap.to_si(self.raw[column], spec["kind"], spec["unit"], slope=spec["slope"],
+        return cap.to_si(self.raw[column][first:stop], spec["kind"], spec["unit"],
+                         slope=spec["slope"],
                          offset=spec["offset"], absolute=spec["absolute"],
                          baro_kpa=self.channel_map["baro_kpa"])
 

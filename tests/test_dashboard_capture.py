@@ -332,7 +332,7 @@ def test_bad_line_in_the_file_is_named_by_line_and_column(store_url: str,  # noq
 
 
 def test_save_logs_the_test_like_the_cli_and_keeps_the_capture(
-        client: Any, store_url: str, tmp_path: Path) -> None:  # noqa: F811
+        store_url: str, tmp_path: Path) -> None:  # noqa: F811
     path = write_capture(tmp_path / "crank.csv")
     upload = capture_data.receive_upload(_data_url(path.read_bytes()), "crank.csv").to_store()
     outcome = capture_data.save(store_url, _form(upload, ROLES))

@@ -107,7 +107,7 @@ def write_recording(path: Path, megabytes: float, rate_hz: int, seed: int = 1) -
 
 def time_display(db_url: str) -> None:
     """The Unit history page's work on the stored capture: decode it, thin every channel for
-    the whole waveform, then redraw a 0.1 s zoom window from every sample (median of 5)."""
+    the whole waveform, then redraw a 10 ms zoom window from every sample (median of 5)."""
     from dashboard import capture_data
     from fleetdb import capture_store, db
 
@@ -122,7 +122,7 @@ def time_display(db_url: str) -> None:
         whole.append(time.perf_counter() - start)
         middle = float(shown.time_s[shown.time_s.size // 2])
         start = time.perf_counter()
-        zoomed = capture_data.traces(shown, middle, middle + 0.1)
+        zoomed = capture_data.traces(shown, middle, middle + 0.01)
         zoom.append(time.perf_counter() - start)
     print(json.dumps({"load_s": load_s, "whole_s": statistics.median(whole),
                       "zoom_s": statistics.median(zoom),
@@ -201,7 +201,7 @@ def main(small: bool = False, units: int | None = None, repeat: int | None = Non
               f"{VARIANTS[variant]}")
     print(f"Unit history on the stored capture: decode {display['load_s']:.2f} s (once per "
           f"process, then cached), whole waveform thinned to {display['points_whole']:,} "
-          f"points in {display['whole_s']:.3f} s, a 0.1 s zoom at full "
+          f"points in {display['whole_s']:.3f} s, a 10 ms zoom at full "
           f"resolution ({display['points_zoom']:,} points) in {display['zoom_s']:.3f} s")
     OUT.mkdir(exist_ok=True)
     stamp = time.strftime("%Y%m%dT%H%M%SZ", time.gmtime())
