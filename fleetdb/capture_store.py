@@ -30,12 +30,12 @@ import numpy as np
 from sqlalchemy import text
 from sqlalchemy.engine import Connection, Engine
 
-from fleetdb import atmosphere, capture_files
+from fleetdb import access, atmosphere, audit, capture_files
 from fleetdb import capture as cap
 from fleetdb.capture_files import CaptureData, Channel, Progress, parse_firing_order, problem
 from fleetdb.defaults import DEFAULTS
 from fleetdb.errors import FleetDBError, InvalidValue, UnitNotFound
-from fleetdb.ingest import current_user, stamp
+from fleetdb.ingest import stamp
 from fleetdb.logbook import TypedReading, log_test
 from fleetdb.units import from_kpa
 
@@ -388,6 +388,10 @@ def capture_test(engine: Engine, path: Path | str, fleet_no: str, tested_at: dat
                                   "created_at, created_by) VALUES (:f, :o, :at, :by)"),
                              {"f": prep.family_id, "o": "-".join(map(str, firing_order)),
                               "at": stamp(conn), "by": prep.by})
+                audit.record(conn, "family.firing_order", f"firing order of the engine family "
+                             f"set to {'-'.join(map(str, firing_order))} with capture "
+                             f"{prep.file_name}", family_id=prep.family_id,
+                             detail={"firing_order": list(firing_order)}, by=prep.by)
             report.firing_order_saved = True
     except Exception as exc:
         # Never leave derived readings in the analysis without the capture they came from.
@@ -446,7 +450,7 @@ def _prepare(engine: Engine, path: Path, fleet_no: str, tested_at: datetime | st
              conditions: dict[str, str] | None = None, by: str | None = None,
              progress: Progress | None = None, name: str | None = None) -> _Prepared:
     """Everything of :func:`capture_test` short of writing: read, derive, check, compress."""
-    by = by or current_user()
+    by = access.author(by)
     shown_name = name or str(path)
     file_name = Path(shown_name).name
     conditions = {k: str(v) for k, v in (conditions or {}).items() if v not in (None, "")}

@@ -85,9 +85,9 @@ def print_table(rows: list[dict[str, Any]], columns: list[tuple[str, str]]) -> N
 
 class FleetGroup(click.Group):
     """The ``fleetdb`` group: the commands defined here, plus those of the sibling modules
-    (``cli_plan``, ``cli_capture``, ``cli_trust``, ``cli_family``), loaded when first asked
-    for. Those modules import this one's helpers, so loading them lazily keeps any import
-    order working."""
+    (``cli_plan``, ``cli_capture``, ``cli_trust``, ``cli_family``, ``cli_users``), loaded
+    when first asked for. Those modules import this one's helpers, so loading them lazily
+    keeps any import order working."""
 
     #: command name -> "module:attribute" of a command defined in a sibling module.
     lazy_commands = {
@@ -97,6 +97,8 @@ class FleetGroup(click.Group):
         "backup": "fleetdb.cli_trust:backup",
         "restore": "fleetdb.cli_trust:restore",
         "family": "fleetdb.cli_family:family",
+        "user": "fleetdb.cli_users:user",
+        "trail": "fleetdb.cli_users:trail",
     }
 
     def list_commands(self, ctx: click.Context) -> list[str]:
@@ -118,6 +120,11 @@ def cli() -> None:
     each engine crosses its limits. The tool advises; it does not certify: the engine
     maker's service data, local rules and licensed practice come first.
     """
+    from fleetdb import access
+
+    # Every write of this run is recorded as made from the command line by this login.
+    token = access.set_actor(access.local_actor("cli"))
+    click.get_current_context().call_on_close(lambda: access.reset_actor(token))
 
 
 @cli.command()

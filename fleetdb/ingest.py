@@ -211,7 +211,10 @@ def import_csv(engine: Engine, csv: CsvFile, *, dry_run: bool = False, by: str |
     :param only_new: write nothing at all (not even the batch) when any of its rows is
         already in the store; the report's outcome is then ``present``.
     """
-    by = by or current_user()
+    from fleetdb import access
+
+    access.require(_RIGHT_TO_IMPORT[csv.kind], f"import a {csv.kind} file")
+    by = access.author(by)
     if len(by) > BY_MAX:
         raise InvalidInput([Problem(csv.name, None, "by", f"the author's name has {len(by)} "
                                     f"characters; at most {BY_MAX} are kept")])
@@ -254,8 +257,37 @@ def import_csv(engine: Engine, csv: CsvFile, *, dry_run: bool = False, by: str |
             conn.rollback()
         else:
             report.batch_id = batch_id
+            _audit_import(conn, csv, report, source, by)
             conn.commit()
     return report
+
+
+#: The right each kind of file needs (see fleetdb.access).
+_RIGHT_TO_IMPORT = {"fleet": "fleet", "tests": "log_test", "events": "service_event"}
+
+
+def _audit_import(conn: Connection, csv: CsvFile, report: ImportReport, source: str,
+                  by: str) -> None:
+    """Record the write in the audit trail, linked to the units it touched."""
+    from fleetdb import audit
+
+    name = Path(csv.name).name
+    counts = ", ".join(f"{n} {what}" for what, n in report.written.items()) or "nothing new"
+    if source not in ("cli", "form", "capture") or csv.kind != "tests":
+        action, summary = "import", f"imported {csv.kind} file {name} ({source}): {counts}"
+    else:
+        action = "test.log"
+        summary = (f"logged test {', '.join(map(str, report.test_ids))} from the {source} "
+                   f"({counts})")
+    unit_ids = report.unit_ids
+    if csv.kind == "fleet":  # the units the file names (new or already present)
+        named = set(csv.frame["fleet_no"].str.strip())
+        unit_ids = [u for u, f in conn.execute(text("SELECT id, fleet_no FROM unit")) if f in named]
+    audit.record(conn, action, summary, unit_ids=unit_ids,
+                 detail={"batch_id": report.batch_id, "file": name, "kind": csv.kind,
+                         "source": source, "written": report.written,
+                         "present": report.present, "test_ids": report.test_ids[:1000]},
+                 by=by)
 
 
 def raise_if(problems: validate.Problems) -> None:

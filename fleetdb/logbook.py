@@ -13,7 +13,7 @@ from sqlalchemy.engine import Engine
 
 from fleetdb.csvfiles import TESTS_OPTIONAL, TESTS_REQUIRED, CsvFile
 from fleetdb.errors import FleetDBError, InvalidInput, Problem
-from fleetdb.ingest import current_user, import_csv, stamp
+from fleetdb.ingest import import_csv, stamp
 
 
 @dataclass(frozen=True)
@@ -91,17 +91,29 @@ def void_test(engine: Engine, test_id: int, reason: str, by: str | None = None) 
     :param reason: why, in words (required).
     :param by: who voids it (default: the operating-system user).
     """
+    from fleetdb import access, audit
+
+    actor = access.require("void_own", "void tests")
     if not reason.strip():
         raise FleetDBError("say why the test is voided (--reason)")
     with engine.begin() as conn:
-        exists = conn.execute(text("SELECT id FROM test WHERE id = :id"), {"id": test_id}).scalar()
-        if exists is None:
+        test = conn.execute(text("SELECT t.unit_id, t.created_by, u.fleet_no FROM test t "
+                                 "JOIN unit u ON u.id = t.unit_id WHERE t.id = :id"),
+                            {"id": test_id}).first()
+        if test is None:
             raise FleetDBError(f"no test with id {test_id}")
+        if not actor.may("void_any") and test.created_by != actor.name:
+            raise access.NotAllowed(f"{actor.name} ({actor.role}) may void only the tests they "
+                                    f"logged; test {test_id} was logged by {test.created_by}")
         already = conn.execute(text("SELECT reason FROM test_void WHERE test_id = :id"),
                                {"id": test_id}).scalar()
         if already is not None:
             raise FleetDBError(f"test {test_id} is already voided ({already})")
         conn.execute(text("INSERT INTO test_void (test_id, reason, voided_by, voided_at) "
                           "VALUES (:id, :reason, :by, :at)"),
-                     {"id": test_id, "reason": reason.strip(), "by": by or current_user(),
+                     {"id": test_id, "reason": reason.strip(), "by": access.author(by),
                       "at": stamp(conn)})
+        audit.record(conn, "test.void", f"voided test {test_id} of {test.fleet_no}: "
+                     f"{reason.strip()}", unit_ids=[test.unit_id],
+                     detail={"test_id": test_id, "reason": reason.strip(),
+                             "logged_by": test.created_by}, by=by)

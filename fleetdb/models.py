@@ -396,3 +396,59 @@ class CaptureBlock(SQLModel, table=True):
     capture_id: int = Field(foreign_key="capture.id", index=True)
     seq: int
     data: bytes = Field(sa_column=Column(LargeBinary(), nullable=False))
+
+
+# Users, sessions and the audit trail (migration 0006).
+ROLES = ("technician", "planner", "manager", "admin")  # fleetdb.access.ROLES, the same order
+
+
+class AppUser(SQLModel, table=True):
+    """A person who logs in to the dashboard, with one role. Never deleted: disabled."""
+
+    __tablename__ = "app_user"
+    __table_args__ = (CheckConstraint(_in("role", ROLES), name="role"),)
+    id: int | None = Field(default=None, primary_key=True)
+    name: str = Field(sa_column=Column(String(80), unique=True, nullable=False))
+    role: str = Field(sa_column=Column(String(16), nullable=False))
+    # "scrypt$n=...,r=...,p=...$salt$key": the parameters travel with the hash.
+    password_hash: str = Field(sa_column=Column(String(255), nullable=False))
+    enabled: bool = True
+    created_at: datetime = Field(default_factory=_utcnow)
+    changed_at: datetime = Field(default_factory=_utcnow)
+
+
+class UserSession(SQLModel, table=True):
+    """One dashboard login; the browser holds a random token, the store its SHA-256."""
+
+    __tablename__ = "user_session"
+    id: int | None = Field(default=None, primary_key=True)
+    token_sha256: str = Field(sa_column=Column(String(64), unique=True, nullable=False))
+    user_id: int = Field(foreign_key="app_user.id", index=True)
+    remote: str = Field(default="", sa_column=Column(String(64), nullable=False))
+    created_at: datetime = Field(default_factory=_utcnow)
+    last_seen_at: datetime = Field(default_factory=_utcnow)
+    ended_at: datetime | None = None
+
+
+class AuditEvent(SQLModel, table=True):
+    """One write: when, who, from where, what. Append-only."""
+
+    __tablename__ = "audit_event"
+    id: int | None = Field(default=None, primary_key=True)
+    at: datetime = Field(default_factory=_utcnow)
+    user_name: str = Field(sa_column=Column(String(80), nullable=False))
+    origin: str = Field(sa_column=Column(String(200), nullable=False))
+    action: str = Field(sa_column=Column(String(40), nullable=False))
+    summary: str = Field(sa_column=Column(String(500), nullable=False))
+    detail_json: str = Field(default="{}", sa_column=Column(Text(), nullable=False))
+    family_id: int | None = Field(default=None, foreign_key="engine_family.id", index=True)
+
+
+class AuditUnit(SQLModel, table=True):
+    """Which units a write touched (the index serves a unit's trail)."""
+
+    __tablename__ = "audit_unit"
+    __table_args__ = (UniqueConstraint("unit_id", "event_id", name="uq_audit_unit_unit_event"),)
+    id: int | None = Field(default=None, primary_key=True)
+    event_id: int = Field(foreign_key="audit_event.id", index=True)
+    unit_id: int = Field(foreign_key="unit.id")

@@ -630,11 +630,12 @@ def commit(engine: Engine, plan: Plan, by: str | None = None) -> int:
     :param by: who commits it (default: the operating-system user).
     :returns: the new plan's id.
     """
-    from fleetdb.ingest import current_user
+    from fleetdb import access, audit
     from fleetdb.models import Unit
 
+    access.require("plan", "commit overhaul plans")
     plans, booked = _tables()
-    who = (by or current_user())[:80]
+    who = access.author(by)[:80]
     now = dt.datetime.now(dt.UTC).replace(microsecond=0)
     ids = [int(u) for u in plan.jobs["unit_id"]]
     with engine.begin() as conn:
@@ -652,6 +653,11 @@ def commit(engine: Engine, plan: Plan, by: str | None = None) -> int:
                  "status": j.status} for j in plan.jobs.itertuples()]
         if rows:
             conn.execute(insert(booked), rows)
+        audit.record(conn, "plan.commit", f"committed overhaul plan {plan_id} as of "
+                     f"{plan.as_of}: {len(ids)} jobs, {plan.late_count} late",
+                     unit_ids=ids, detail={"plan_id": int(plan_id), "jobs": {
+                         str(j.unit_id): {"week_start": str(j.week_start), "status": j.status}
+                         for j in plan.jobs.itertuples()}}, by=who)
     plan.committed = {"plan_id": int(plan_id), "created_by": who,
                       "created_at": now.isoformat(timespec="seconds")}
     return int(plan_id)
