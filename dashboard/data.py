@@ -26,7 +26,7 @@ from sqlalchemy import text
 from sqlalchemy.engine import Engine
 from sqlalchemy.exc import IntegrityError
 
-from fleetdb import assess, db, exports, frames, health, logbook, plan, views
+from fleetdb import access, assess, db, exports, frames, health, logbook, plan, views
 from fleetdb.errors import InvalidInput, InvalidValue, Problem
 from fleetdb.validate import parse_banks
 
@@ -593,7 +593,8 @@ def commit_plan(url: str, as_of: dt.date | None, form: PlanForm, who: str | None
     :param who: who commits (required: a web server's login name says nothing).
     :raises InvalidValue: no name, or a bad input (then nothing is stored).
     """
-    name = _text(who)
+    actor = access.current()
+    name = actor.name if actor.role is not None else _text(who)  # a logged-in user is known
     if not name:
         raise InvalidValue("Committed by: write your name before committing.")
     day = as_of or dt.date.today()

@@ -11,6 +11,20 @@ from typing import Any
 # -- the app shell ----------------------------------------------------------------------
 NAV = "app-nav"
 APP_URL = "app-url"
+APP_USER = "app-user"
+APP_LOGOUT = "app-logout"
+
+# -- Audit trail (/trail) -------------------------------------------------------------
+TRAIL_PICK = "trail-pick"
+TRAIL_TABLE = "trail-table"
+TRAIL_EXPORT = "trail-export"
+TRAIL_DOWNLOAD = "trail-download"
+TRAIL_VOID_SECTION = "trail-void-section"
+TRAIL_VOID_TEST = "trail-void-test"
+TRAIL_VOID_REASON = "trail-void-reason"
+TRAIL_VOID = "trail-void"
+TRAIL_VOID_RESULT = "trail-void-result"
+UNIT_TRAIL_LINK = "unit-trail-link"
 
 # -- Log a test (/log) ----------------------------------------------------------------
 LOG_UNIT = "log-unit"

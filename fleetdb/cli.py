@@ -500,37 +500,72 @@ def refresh(as_of: Any, db: str | None) -> None:
 
 
 def serve_options(func: Callable) -> Callable:
-    """``--host`` and ``--port`` for the dashboard."""
+    """``--host``, ``--port`` and the session limits for the dashboard."""
+    from fleetdb.users import SESSION_SETTINGS
+
+    for name, default, text_ in reversed(SESSION_SETTINGS):
+        func = click.option(f"--{name.replace('_', '-')}", name, default=default, type=int,
+                            show_default=True, envvar=f"FLEETDB_{name.upper()}",
+                            show_envvar=True, help=text_[0].upper() + text_[1:] + ".")(func)
     func = click.option("--port", default=8050, show_default=True, type=int,
                         help="Port to listen on.")(func)
     return click.option("--host", default="127.0.0.1", show_default=True,
-                        help="Address to listen on.")(func)
+                        help="Address to listen on (beyond 127.0.0.1 needs an enabled "
+                             "admin).")(func)
 
 
-def _serve(url: str, host: str, port: int) -> None:
+def _serve(url: str, host: str, port: int, *, auth: bool, idle_minutes: int,
+           max_hours: int) -> None:
+    import datetime as dt
+
     from dashboard import create_app
+    from fleetdb.users import SessionLimits
 
-    app = create_app(url)
+    limits = SessionLimits(idle=dt.timedelta(minutes=idle_minutes),
+                           absolute=dt.timedelta(hours=max_hours))
+    app = create_app(url, auth=auth, session_limits=limits)
     click.echo(f"Dashboard on http://{host}:{port}/  (Ctrl-C to stop)")
+    if auth:
+        click.echo(f"Login required; sessions end after {idle_minutes} min idle or "
+                   f"{max_hours} h.")
+    else:
+        click.echo("No login: anyone who can open this address on this computer acts as "
+                   f"{_os_user()} with every right.")
     from waitress import serve as waitress_serve
 
     waitress_serve(app.server, host=host, port=port, threads=8, _quiet=True)
 
 
+def _os_user() -> str:
+    from fleetdb.access import os_user
+
+    return os_user()
+
+
 @cli.command()
 @serve_options
+@click.option("--no-auth", is_flag=True,
+              help="Serve without login (on 127.0.0.1 only): every request acts as you.")
 @db_option
 @friendly_errors
-def serve(host: str, port: int, db: str | None) -> None:
-    """Serve the dashboard: health board, unit history, test logging, fleet wear.
+def serve(host: str, port: int, session_idle_minutes: int, session_max_hours: int,
+          no_auth: bool, db: str | None) -> None:
+    """Serve the dashboard: health board, unit history, test logging, fleet wear, trails.
+
+    Asks for a login (fleetdb user add); refuses an address beyond 127.0.0.1 unless an
+    enabled admin exists, and --no-auth anywhere but 127.0.0.1.
 
     \b
     Example:
         fleetdb serve --port 8050
+        fleetdb serve --host 0.0.0.0 --session-idle-minutes 15
     """
+    from fleetdb import users
+
     url = config.database_url(db)
-    _engine(db)
-    _serve(url, host, port)
+    users.check_serve(_engine(db), host, no_auth)
+    _serve(url, host, port, auth=not no_auth, idle_minutes=session_idle_minutes,
+           max_hours=session_max_hours)
 
 
 @cli.command()
@@ -542,10 +577,12 @@ def serve(host: str, port: int, db: str | None) -> None:
 @db_option
 @friendly_errors
 def demo(as_of: Any, seed: int, then_serve: bool, host: str, port: int,
-         db: str | None) -> None:
+         session_idle_minutes: int, session_max_hours: int, db: str | None) -> None:
     """Build the invented demo fleet, print its board, then serve the dashboard.
 
-    Running it again on the same database changes nothing.
+    Running it again on the same database changes nothing. On 127.0.0.1 (the default) the
+    demo is served without login, for this computer only; on any other address it asks
+    for a login like fleetdb serve.
 
     \b
     Example:
@@ -565,7 +602,15 @@ def demo(as_of: Any, seed: int, then_serve: bool, host: str, port: int,
     ctx.invoke(board, as_of=as_of, site=None, family=None, level=None, search=None,
                as_json=False, db=db)
     if then_serve:
-        _serve(url, host, port)
+        from fleetdb import users
+
+        no_auth = users.is_loopback(host)
+        users.check_serve(engine, host, no_auth)
+        if no_auth:
+            click.echo("\nThe demo is served WITHOUT LOGIN, on this computer only. For users "
+                       "and roles: fleetdb user add NAME --role admin, then fleetdb serve.")
+        _serve(url, host, port, auth=not no_auth, idle_minutes=session_idle_minutes,
+               max_hours=session_max_hours)
 
 
 @cli.command()

@@ -117,3 +117,27 @@ def void_test(engine: Engine, test_id: int, reason: str, by: str | None = None) 
                      f"{reason.strip()}", unit_ids=[test.unit_id],
                      detail={"test_id": test_id, "reason": reason.strip(),
                              "logged_by": test.created_by}, by=by)
+
+
+def voidable_tests(engine: Engine, fleet_no: str) -> list[dict[str, object]]:
+    """The unit's tests the current actor may void (not voided yet), newest first.
+
+    :returns: ``[{test_id, tested_at, hours, logged_by}]``; a user without the right to void
+        any test sees only the tests they logged; a user who may not void sees none.
+    """
+    from fleetdb import access
+
+    actor = access.current()
+    if not actor.may("void_own"):
+        return []
+    rows = _rows(engine, "SELECT t.id, t.tested_at, t.hours, t.created_by FROM test t JOIN unit "
+                 "u ON u.id = t.unit_id LEFT JOIN test_void v ON v.test_id = t.id WHERE "
+                 "u.fleet_no = :f AND v.id IS NULL ORDER BY t.tested_at DESC, t.id DESC",
+                 {"f": fleet_no})
+    return [{"test_id": r[0], "tested_at": str(r[1])[:16], "hours": r[2], "logged_by": r[3]}
+            for r in rows if actor.may("void_any") or r[3] == actor.name]
+
+
+def _rows(engine: Engine, sql: str, params: dict[str, object]) -> list[tuple]:
+    with engine.connect() as conn:
+        return [tuple(r) for r in conn.execute(text(sql), params)]

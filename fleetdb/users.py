@@ -331,3 +331,40 @@ def log_out(engine: Engine, token: str | None) -> None:
         conn.execute(update(_sessions).where(_sessions.c.token_sha256 == _token_digest(token),
                                              _sessions.c.ended_at.is_(None))
                      .values(ended_at=_now()))
+
+
+# -- who may serve where ---------------------------------------------------------------------
+
+def is_loopback(host: str) -> bool:
+    """Whether ``host`` is this computer only (127.0.0.0/8, ::1, ``localhost``)."""
+    import ipaddress
+
+    if host.strip().lower() == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host.strip("[]")).is_loopback
+    except ValueError:
+        return False  # a name other than localhost may resolve anywhere
+
+
+def check_serve(engine: Engine, host: str, no_auth: bool) -> None:
+    """Refuse a dashboard that others could reach without the protection it needs.
+
+    * ``no_auth`` only on loopback;
+    * beyond loopback, at least one enabled admin must exist (someone who can manage users);
+    * with login on, at least one enabled user (else nobody could log in).
+
+    :raises FleetDBError: saying what to do instead.
+    """
+    if no_auth:
+        if not is_loopback(host):
+            raise FleetDBError(f"--no-auth serves without login and is allowed on this "
+                               f"computer only (--host 127.0.0.1), not on {host}")
+        return
+    if not is_loopback(host) and enabled_admins(engine) == 0:
+        raise FleetDBError(f"refusing to listen on {host}: no enabled admin exists. Add one "
+                           "first (fleetdb user add NAME --role admin), or serve on "
+                           "127.0.0.1")
+    if enabled_users(engine) == 0:
+        raise FleetDBError("no enabled user can log in: add one (fleetdb user add NAME --role "
+                           "admin), or serve without login on this computer only (--no-auth)")

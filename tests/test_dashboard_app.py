@@ -35,7 +35,7 @@ def store_url(tmp_path: Path) -> Iterator[str]:
 
 @pytest.fixture
 def client(store_url: str) -> Any:
-    app = create_app(store_url)
+    app = create_app(store_url, auth=False)
     return app.server.test_client()
 
 
@@ -329,7 +329,7 @@ def demo_url(demo_file: Path, tmp_path_factory: pytest.TempPathFactory) -> Itera
 
 @pytest.fixture
 def demo_client(demo_url: str) -> Any:
-    return create_app(demo_url).server.test_client()
+    return create_app(demo_url, auth=False).server.test_client()
 
 
 def _call(client: Any, output_id: str, values: dict[str, Any], trigger: str) -> dict[str, Any]:
@@ -441,7 +441,7 @@ def test_export_writes_the_filtered_board_with_formulas_neutralised(
     hostile.write_text("fleet_no,site,engine_family\n=cmd|' /C calc'!A0,Low Yard,TEST-L4\n"
                        "@T-999,Low Yard,TEST-L4\n", encoding="utf-8")
     ingest.import_files(db.get_engine(store_url), [hostile], by="test")
-    client = create_app(store_url).server.test_client()
+    client = create_app(store_url, auth=False).server.test_client()
     values = {f"{ids.BOARD_EXPORT}.n_clicks": 1, f"{ids.BOARD_AS_OF}.date": "2024-06-01",
               f"{ids.BOARD_SITE}.value": "Low Yard"}
     download = _call(client, ids.BOARD_DOWNLOAD, values,
@@ -544,7 +544,7 @@ def test_a_fleet_with_no_tests_yet_answers_on_every_page(tmp_path: Path) -> None
     url = f"sqlite:///{tmp_path / 'new.sqlite'}"
     migrate.upgrade(url)
     ingest.import_files(db.get_engine(url), [DATA / "fleet.csv"], by="test")
-    client = create_app(url).server.test_client()
+    client = create_app(url, auth=False).server.test_client()
     day = "2024-06-01"
     board = _call(client, ids.BOARD_TABLE, {f"{ids.BOARD_AS_OF}.date": day},
                   f"{ids.BOARD_AS_OF}.date")

@@ -166,7 +166,7 @@ def store_url(demo_file: Path, tmp_path: Path) -> Iterator[str]:
 
 @pytest.fixture
 def client(store_url: str) -> Any:
-    return create_app(store_url).server.test_client()
+    return create_app(store_url, auth=False).server.test_client()
 
 
 def plans_stored(url: str) -> int:

@@ -13,6 +13,7 @@ import dash
 from dash import Input, Output, State, callback, ctx, dash_table, dcc, html, no_update
 
 from dashboard import components, data, ids
+from fleetdb import access
 
 dash.register_page(__name__, path="/", name="Health board", title="Health board · fleetdb",
                    order=0)
@@ -75,7 +76,8 @@ def layout(as_of: str | None = None, site: str | None = None, family: str | None
                     autoComplete="off", placeholder="e.g. LT-9")),
                 html.Button("Export CSV", id=ids.BOARD_EXPORT, n_clicks=0,
                             className="button-secondary",
-                            title="Every row of the filtered board, as a CSV file"),
+                            title="Every row of the filtered board, as a CSV file",
+                            hidden=not access.current().may("export")),
             ], className="filters"),
             html.P(id=ids.BOARD_SHOWING, className="hint", **{"aria-live": "polite"}),
             dash_table.DataTable(

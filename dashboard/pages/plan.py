@@ -16,6 +16,7 @@ import dash
 from dash import ALL, Input, Output, State, callback, ctx, dcc, html, no_update
 
 from dashboard import components, data, figures, ids
+from fleetdb import access
 from fleetdb import plan as plan_mod
 from fleetdb.errors import FleetDBError
 from fleetdb.exports import CAUTION
@@ -31,6 +32,7 @@ STATUS_WORDS = {"new": "new", "booked": "kept its booking", "rebooked": "rebooke
 def layout(as_of: str | None = None, **_query: Any) -> html.Div:
     """The page; cheap: the settings, the schedule and the table are filled by callbacks."""
     day = data.parse_day(as_of) or dt.date.today()
+    actor = access.current()  # pages hide what the role cannot do; the server checks again
     return html.Div([
         html.Div([
             html.H1("Overhaul plan"),
@@ -59,14 +61,14 @@ def layout(as_of: str | None = None, **_query: Any) -> html.Div:
                 html.Button("Try these settings", id=ids.PLAN_TRY, n_clicks=0,
                             className="button-secondary"),
                 html.Div([
-                    components.field("Committed by", dcc.Input(
+                    html.Div(components.field("Committed by", dcc.Input(
                         id=ids.PLAN_WHO, type="text", autoComplete="off",
-                        placeholder="your name")),
+                        placeholder="your name")), hidden=actor.role is not None),
                     html.Button("Commit this plan", id=ids.PLAN_COMMIT, n_clicks=0,
                                 className="button-primary",
                                 title="Store the plan under these settings; the board shows "
                                       "its units as booked"),
-                ], className="plan-commit"),
+                ], className="plan-commit", hidden=not actor.may("plan")),
             ], className="panel plan-settings"),
             html.Div([
                 html.Section([html.H2("This plan"), html.Div(id=ids.PLAN_SUMMARY),
@@ -75,7 +77,8 @@ def layout(as_of: str | None = None, **_query: Any) -> html.Div:
                                               className="button-secondary"),
                                   html.Button("Download calendar (.ics)", id=ids.PLAN_ICS,
                                               n_clicks=0, className="button-secondary"),
-                              ], className="plan-downloads")], className="panel"),
+                              ], className="plan-downloads",
+                                  hidden=not actor.may("export"))], className="panel"),
                 html.Section([html.H2("What changed"), html.Div(id=ids.PLAN_CHANGES)],
                              className="panel"),
             ]),

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import datetime as dt
 from typing import Any
+from urllib.parse import urlencode
 
 import dash
 from dash import Input, Output, Patch, State, callback, ctx, dcc, html
@@ -55,6 +56,8 @@ def layout(fleet_no: str | None = None, as_of: str | None = None, capture: str |
                 class_name="field filter"),
         ], className="filters panel"),
         html.Div(id=ids.UNIT_SUMMARY),
+        dcc.Link("Audit trail of this unit: who wrote what, from where", id=ids.UNIT_TRAIL_LINK,
+                 href=f"/trail?{urlencode({'fleet_no': fleet_no or ''})}", className="trail-link"),
         html.Section([
             dcc.Graph(id=ids.UNIT_COMPRESSION, config=_GRAPH_CONFIG),
             html.P("Solid lines: the current wear line of each cylinder; dotted: its "
@@ -196,3 +199,6 @@ def _draw_waveform(capture_id: int | None, unit: str, relayout: dict[str, Any] |
     keep = window if ctx.triggered_id == ids.UNIT_PRESSURE_UNIT and window else (None, None)
     return capture_figures.waveform(capture_data.traces(shown, *keep), shown.derived, unit,
                                     revision=capture_id)
+@callback(Output(ids.UNIT_TRAIL_LINK, "href"), Input(ids.UNIT_PICK, "value"))
+def _link_trail(fleet_no: str | None) -> str:
+    return f"/trail?{urlencode({'fleet_no': fleet_no or ''})}"

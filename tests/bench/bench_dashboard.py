@@ -146,7 +146,7 @@ def measure_server(url: str, day: dt.date, repeat: int) -> list[dict[str, Any]]:
     from fleetdb import db, health
 
     engine = db.get_engine(url)
-    app = create_app(url)
+    app = create_app(url, auth=False)
     client = app.server.test_client()
     deps = client.get("/_dash-dependencies").get_json()
     sites, families = data.sites_and_families(url)
@@ -253,7 +253,7 @@ def measure_browser(url: str, day: dt.date, repeat: int) -> tuple[list[dict[str,
     from dashboard import create_app
 
     logging.getLogger("werkzeug").setLevel(logging.WARNING)
-    server = make_server("127.0.0.1", 0, create_app(url).server, threaded=True)
+    server = make_server("127.0.0.1", 0, create_app(url, auth=False).server, threaded=True)
     thread = threading.Thread(target=server.serve_forever, daemon=True)
     thread.start()
     first, pages, filters = [], [], []

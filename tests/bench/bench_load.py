@@ -10,7 +10,9 @@ by itself. Two parts:
   keep-alive connection, cycle through the pages' requests: ``GET /``, ``GET
   /unit?fleet_no=...``, ``GET /_dash-layout``, ``GET /_dash-dependencies`` and the two data
   callbacks a browser POSTs to ``/_dash-update-component`` (the Health board's table, the
-  Unit history's summary). Meanwhile 2 writer processes log tests as ``fleetdb log`` does
+  Unit history's summary). Every reader logs in first (``POST /login`` as a manager)
+  and sends its session cookie, so each request passes the login and role checks.
+  Meanwhile 2 writer processes log tests as ``fleetdb log`` does
   (``fleetdb.logbook.log_test``, then ``fleetdb.health.refresh_units``). Baselines from
   the same run: the server's floor (20 clients fetching a static file, ``/_favicon.ico``)
   and the same request mix from one client alone. Afterwards every logged test must be in
@@ -42,6 +44,7 @@ import sys
 import tempfile
 import threading
 import time
+import urllib.parse
 import uuid
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -130,6 +133,9 @@ def build_store(url: str, units: int | None, folder: Path) -> dict[str, Any]:
     engine.dispose()
     if units is not None:
         fleetdb("refresh", "--db", url)
+    subprocess.run([sys.executable, "-m", "fleetdb", "user", "add", READER[0], "--role",
+                    "manager", "--password-stdin", "--db", url], cwd=REPO, check=True,
+                   capture_output=True, text=True, input=READER[1] + "\n")
     return {"what": what, "units": row[0], "tests": row[1], "readings": row[2],
             "fleet_nos": fleet_nos, "build_seconds": round(time.perf_counter() - start, 1)}
 
@@ -177,15 +183,34 @@ def served(url: str, log: Path) -> Iterator[int]:
 
 # -- readers ---------------------------------------------------------------------------------
 
+#: The user every reader logs in as (a manager reads everything), made by build_store.
+READER = ("bench-manager", "bench manager password")
+
+
 class Client:
-    """One keep-alive HTTP connection to the server, as one browser tab would hold."""
+    """One keep-alive HTTP connection to the server, as one browser tab would hold, logged
+    in as :data:`READER` (its session cookie goes with every request)."""
 
     def __init__(self, port: int):
         self.conn = http.client.HTTPConnection("127.0.0.1", port, timeout=60)
+        self.cookie = self.login(*READER)
+
+    def login(self, name: str, password: str) -> str:
+        """POST the login form; return the session cookie to send."""
+        form = urllib.parse.urlencode({"name": name, "password": password}).encode()
+        self.conn.request("POST", "/login", body=form,
+                          headers={"Content-Type": "application/x-www-form-urlencoded"})
+        reply = self.conn.getresponse()
+        reply.read()
+        cookie = reply.getheader("Set-Cookie") or ""
+        if reply.status != 302 or not cookie:
+            raise RuntimeError(f"login as {name}: HTTP {reply.status}")
+        return cookie.split(";", 1)[0]
 
     def call(self, method: str, path: str, body: dict[str, Any] | None = None) -> bytes:
         payload = None if body is None else json.dumps(body).encode()
         headers = {"Content-Type": "application/json"} if payload else {}
+        headers["Cookie"] = self.cookie
         self.conn.request(method, path, body=payload, headers=headers)
         reply = self.conn.getresponse()
         data = reply.read()

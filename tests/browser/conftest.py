@@ -75,7 +75,7 @@ def live_server(store_url: str) -> Iterator[str]:
     from werkzeug.serving import make_server
 
     logging.getLogger("werkzeug").setLevel(logging.WARNING)
-    app = create_app(store_url)
+    app = create_app(store_url, auth=False)
     server = make_server("127.0.0.1", 0, app.server, threaded=True)
     thread = threading.Thread(target=server.serve_forever, name="dash-under-test", daemon=True)
     thread.start()
