@@ -202,7 +202,8 @@ def test_a_manager_cannot_log_and_a_technician_logs_as_themself(base: str,
 def _void(client: requests.Session, base: str, test_id: int) -> requests.Response:
     return post_callback(client, base, ids.TRAIL_VOID_RESULT,
                          {f"{ids.TRAIL_VOID}.n_clicks": 1, f"{ids.TRAIL_VOID_TEST}.value": test_id,
-                          f"{ids.TRAIL_VOID_REASON}.value": "gauge hose leaked"},
+                          f"{ids.TRAIL_VOID_REASON}.value": "gauge hose leaked",
+                          f"{ids.TRAIL_PICK}.value": "T-101"},
                          f"{ids.TRAIL_VOID}.n_clicks")
 
 

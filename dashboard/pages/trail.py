@@ -9,7 +9,7 @@ import dash
 from dash import Input, Output, State, callback, dcc, html, no_update
 
 from dashboard import components, data, ids
-from fleetdb import access, audit, logbook
+from fleetdb import access, audit, health, logbook, views
 from fleetdb.errors import FleetDBError, UnitNotFound
 
 dash.register_page(__name__, path="/trail", name="Audit trail", title="Audit trail · fleetdb",
@@ -36,7 +36,8 @@ def layout(fleet_no: str | None = None, **_query: Any) -> html.Div:
         html.Section(html.Div(id=ids.TRAIL_TABLE), className="panel"),
         html.Section([
             html.H2("Void a test"),
-            html.P("A voided test stays in the record and leaves the analysis. Say why.",
+            html.P("A voided test stays in the record and leaves the analysis. Say why. "
+                   + ("" if actor.may("void_any") else "Only the tests you logged are listed."),
                    className="hint"),
             components.field("Test", dcc.Dropdown(id=ids.TRAIL_VOID_TEST, options=[],
                                                   placeholder="a test of this unit")),
@@ -87,14 +88,16 @@ def _show_trail(fleet_no: str | None, _voided: Any) -> tuple[Any, list[dict[str,
 
 @callback(Output(ids.TRAIL_VOID_RESULT, "children"), Input(ids.TRAIL_VOID, "n_clicks"),
           State(ids.TRAIL_VOID_TEST, "value"), State(ids.TRAIL_VOID_REASON, "value"),
-          prevent_initial_call=True)
-def _void(_clicks: int, test_id: int | None, reason: str | None) -> Any:
-    if test_id is None:
+          State(ids.TRAIL_PICK, "value"), prevent_initial_call=True)
+def _void(_clicks: int, test_id: int | None, reason: str | None, fleet_no: str | None) -> Any:
+    if test_id is None or not fleet_no:
         return components.problem_list("Nothing voided", [("Test", "pick a test first")])
+    engine = data.engine_for(data.current_url())
     try:
-        logbook.void_test(data.engine_for(data.current_url()), int(test_id), reason or "")
+        logbook.void_test(engine, int(test_id), reason or "")
     except FleetDBError as exc:
         return components.problem_list("Nothing voided", [("Void", str(exc))])
+    health.refresh_units(engine, [views.unit_id_for(engine, fleet_no)])
     return html.P(f"✓ Voided test {test_id}: {reason.strip()}", className="ok")
 
 
