@@ -230,3 +230,26 @@ def test_trail_command_and_cli_origin(store: str) -> None:
     assert "no unit" in run(["trail", "NOPE"], store, 1)
     # The command line's actor does not leak out of the command.
     assert access.current().origin.startswith("local:")
+
+
+def test_upgrading_a_store_gives_earlier_writes_a_trail(db_url: str) -> None:
+    """Rows written before revision 0006 get trail events (author and time as stored)."""
+    from fleetdb import db, migrate
+
+    migrate.upgrade(db_url)
+    engine = db.make_engine(db_url)
+    import_files(engine, [DATA / "fleet.csv", DATA / "tests.csv"], by="old-importer")
+    logbook.void_test(engine, 1, "gauge hose leaked", by="old-voider")
+    engine.dispose()
+    migrate.downgrade(db_url, "0005")  # back to before the trail: its tables go
+    migrate.upgrade(db_url)
+    engine = db.make_engine(db_url)
+    with engine.connect() as conn:
+        unit_of_test_1 = conn.execute(text("SELECT u.fleet_no FROM test t JOIN unit u ON "
+                                           "u.id = t.unit_id WHERE t.id = 1")).scalar()
+    trail = audit.unit_trail(engine, unit_of_test_1)
+    engine.dispose()
+    assert [(e["user"], e["action"]) for e in trail] == [
+        ("old-importer", "import"), ("old-importer", "import"), ("old-voider", "test.void")]
+    assert {e["origin"] for e in trail} == {"before the audit trail (origin not kept)"}
+    assert "gauge hose leaked" in trail[-1]["summary"]

@@ -5,6 +5,7 @@ Revises: 0006
 Create Date: 2026-12-02 06:01:10.873138
 """
 
+import json
 from collections.abc import Sequence
 
 import sqlalchemy as sa
@@ -86,6 +87,67 @@ def upgrade() -> None:
         batch_op.create_index(batch_op.f("ix_audit_unit_event_id"), ["event_id"], unique=False)
 
     # ### end Alembic commands ###
+    _backfill_trail(op.get_bind())
+
+
+#: The origin of trail events made from rows written before the trail existed.
+BEFORE_TRAIL = "before the audit trail (origin not kept)"
+
+
+def _backfill_trail(conn: sa.engine.Connection) -> None:
+    """Give the writes already in the store a place in the trail: each import batch (with
+    the units of its tests and service events), each void and each committed plan, with the
+    author and time their rows recorded. The origin was not kept before this revision."""
+    events = sa.table(
+        "audit_event", sa.column("id", sa.Integer), sa.column("at"),  # as stored: no conversion
+        sa.column("user_name", sa.String), sa.column("origin", sa.String),
+        sa.column("action", sa.String), sa.column("summary", sa.String),
+        sa.column("detail_json", sa.Text))
+    links = sa.table("audit_unit", sa.column("event_id", sa.Integer),
+                     sa.column("unit_id", sa.Integer))
+    done: list[tuple] = []
+    claimed: set[int] = set()
+    batches = conn.execute(sa.text(
+        "SELECT id, created_at, created_by, file_name, file_kind, rows_written "
+        "FROM import_batch WHERE outcome = 'imported' ORDER BY id")).all()
+    for b, after in zip(batches, [*batches[1:], None][:len(batches)], strict=True):
+        if b.file_kind == "fleet":  # units keep no batch: those its author added until the
+            later = "" if after is None else " AND created_at <= :next"  # next batch
+            units = [u for u in conn.execute(sa.text(
+                f"SELECT id FROM unit WHERE created_by = :by AND created_at >= :at{later}"),
+                {"by": b.created_by, "at": b.created_at,
+                 "next": None if after is None else after.created_at}).scalars()
+                if u not in claimed]
+            claimed.update(units)
+        else:
+            units = conn.execute(sa.text(
+                "SELECT unit_id FROM test WHERE batch_id = :b UNION "
+                "SELECT unit_id FROM service_event WHERE batch_id = :b"), {"b": b.id}).scalars()
+        done.append((b.created_at, b.created_by, "import",
+                     f"imported {b.file_kind} file {b.file_name}: {b.rows_written} rows",
+                     {"batch_id": b.id}, list(units)))
+    for v in conn.execute(sa.text(
+            "SELECT v.test_id, v.voided_at, v.voided_by, v.reason, t.unit_id FROM test_void v "
+            "JOIN test t ON t.id = v.test_id ORDER BY v.id")).all():
+        done.append((v.voided_at, v.voided_by, "test.void",
+                     f"voided test {v.test_id}: {v.reason}"[:500], {"test_id": v.test_id},
+                     [v.unit_id]))
+    for pl in conn.execute(sa.text(
+            "SELECT id, created_at, created_by, as_of, job_count FROM overhaul_plan "
+            "ORDER BY id")).all():
+        units = conn.execute(sa.text("SELECT unit_id FROM overhaul_booking WHERE plan_id = :p"),
+                             {"p": pl.id}).scalars()
+        done.append((pl.created_at, pl.created_by, "plan.commit",
+                     f"committed overhaul plan {pl.id} as of {pl.as_of}: {pl.job_count} jobs",
+                     {"plan_id": pl.id}, list(units)))
+    done.sort(key=lambda e: str(e[0]))
+    for at, who, action, summary, detail, units in done:
+        event_id = conn.execute(sa.insert(events).values(
+            at=at, user_name=(who or "unknown")[:80], origin=BEFORE_TRAIL, action=action,
+            summary=summary, detail_json=json.dumps(detail)).returning(events.c.id)).scalar_one()
+        if units:
+            conn.execute(sa.insert(links), [{"event_id": event_id, "unit_id": u}
+                                            for u in sorted(set(units))])
 
 
 def downgrade() -> None:
