@@ -38,6 +38,9 @@ PUBLIC_PREFIXES = ("/login", "/_dash-component-suites/", "/assets/", "/_favicon.
 #: trigger of None means whatever triggers it. The library checks again when it writes.
 CALLBACK_RIGHTS: dict[tuple[str, str | None], str] = {
     (ids.LOG_SAVE_RESULT, ids.LOG_SAVE): "log_test",
+    (ids.LOG_CAPTURE_KEY, ids.LOG_CAPTURE_UPLOAD): "log_test",  # kept on the server's disk
+    (ids.LOG_CAPTURE_PREVIEW_OUT, None): "log_test",
+    (ids.LOG_CAPTURE_SAVE_RESULT, ids.LOG_CAPTURE_SAVE): "log_test",
     (ids.PLAN_STATE, ids.PLAN_COMMIT): "plan",
     (ids.PLAN_DOWNLOAD, None): "export",
     (ids.BOARD_DOWNLOAD, None): "export",

@@ -280,3 +280,16 @@ def test_serve_refuses_what_would_expose_the_store(tmp_path: Path) -> None:
     users.add_user(engine, "ada", "admin", PASSWORDS["ada"])
     users.check_serve(engine, "0.0.0.0", False)  # now allowed
     engine.dispose()
+
+
+def test_a_manager_cannot_upload_or_save_a_capture(base: str) -> None:
+    meg = login(base, "meg")
+    upload = post_callback(meg, base, ids.LOG_CAPTURE_KEY,
+                           {f"{ids.LOG_CAPTURE_UPLOAD}.contents": "data:text/csv;base64,dCxwMQo=",
+                            f"{ids.LOG_CAPTURE_UPLOAD}.filename": "c.csv"},
+                           f"{ids.LOG_CAPTURE_UPLOAD}.contents")
+    assert upload.status_code == 403
+    save = post_callback(meg, base, ids.LOG_CAPTURE_SAVE_RESULT,
+                         {f"{ids.LOG_CAPTURE_SAVE}.n_clicks": 1},
+                         f"{ids.LOG_CAPTURE_SAVE}.n_clicks")
+    assert save.status_code == 403

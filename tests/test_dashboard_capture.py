@@ -31,7 +31,7 @@ FORM = {"fleet_no": "T-101", "tested_at": "2024-07-01 08:30", "hours": "1300",
 
 @pytest.fixture
 def client(store_url: str) -> Any:  # noqa: F811
-    return create_app(store_url).server.test_client()
+    return create_app(store_url, auth=False).server.test_client()
 
 
 @pytest.fixture
