@@ -398,7 +398,7 @@ class CaptureBlock(SQLModel, table=True):
     data: bytes = Field(sa_column=Column(LargeBinary(), nullable=False))
 
 
-# Users, sessions and the audit trail (migration 0006).
+# Users, sessions and the audit trail (migration 0007).
 ROLES = ("technician", "planner", "manager", "admin")  # fleetdb.access.ROLES, the same order
 
 

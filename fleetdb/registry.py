@@ -354,10 +354,11 @@ def set_limits(engine: Engine, family: str, typed: dict[str, str], *, reason: st
         now current (see :func:`fleetdb.limits.describe`).
     :raises InvalidInput: a value that cannot be accepted, named by its option.
     """
-    from fleetdb.ingest import current_user
+    from fleetdb import access, audit
     from fleetdb.units import parse_quantity
 
-    by = by or current_user()
+    access.require("limits", "change engine family limits")
+    by = access.author(by)
     problems = validate.Problems("command line")
     reason = reason.strip()
     if not reason or len(reason) > limits.REASON_MAX or "\x00" in reason:
@@ -411,5 +412,10 @@ def set_limits(engine: Engine, family: str, typed: dict[str, str], *, reason: st
                     "limits": limits.describe(conn, int(stored["id"]), current)}
         version = limits.add_version(conn, int(stored["id"]), record, reason=reason, by=by,
                                      source="cli", batch_id=None, at=stamp(conn))
+        changed = sorted(limits.changed_columns(stored, record))
+        audit.record(conn, "limits.change", f"engine family {family} limits version {version} "
+                     f"({', '.join(changed)}): {reason}", family_id=int(stored["id"]),
+                     detail={"family": family, "version": version, "changed": changed,
+                             "reason": reason}, by=by)
         return {"changed": True, "version": version,
                 "limits": limits.describe(conn, int(stored["id"]), version)}

@@ -233,7 +233,7 @@ def test_trail_command_and_cli_origin(store: str) -> None:
 
 
 def test_upgrading_a_store_gives_earlier_writes_a_trail(db_url: str) -> None:
-    """Rows written before revision 0006 get trail events (author and time as stored)."""
+    """Rows written before revision 0007 get trail events (author and time as stored)."""
     from fleetdb import db, migrate
 
     migrate.upgrade(db_url)
@@ -241,7 +241,7 @@ def test_upgrading_a_store_gives_earlier_writes_a_trail(db_url: str) -> None:
     import_files(engine, [DATA / "fleet.csv", DATA / "tests.csv"], by="old-importer")
     logbook.void_test(engine, 1, "gauge hose leaked", by="old-voider")
     engine.dispose()
-    migrate.downgrade(db_url, "0005")  # back to before the trail: its tables go
+    migrate.downgrade(db_url, "0006")  # back to before the trail: its tables go
     migrate.upgrade(db_url)
     engine = db.make_engine(db_url)
     with engine.connect() as conn:
@@ -253,3 +253,22 @@ def test_upgrading_a_store_gives_earlier_writes_a_trail(db_url: str) -> None:
         ("old-importer", "import"), ("old-importer", "import"), ("old-voider", "test.void")]
     assert {e["origin"] for e in trail} == {"before the audit trail (origin not kept)"}
     assert "gauge hose leaked" in trail[-1]["summary"]
+
+
+def test_limit_changes_need_an_admin_and_reach_the_trail_of_every_unit_of_the_family(
+        engine: Engine) -> None:
+    from fleetdb import registry
+
+    import_files(engine, [DATA / "fleet.csv"], by="importer")
+    with access.acting_as(_web("pat", "planner")), pytest.raises(access.NotAllowed):
+        registry.set_limits(engine, "TEST-L4", {"min_compression": "125 psi"}, reason="x")
+    with access.acting_as(_web("ada", "admin")):
+        registry.set_limits(engine, "TEST-L4", {"min_compression": "125 psi"},
+                            reason="service data, 2025 edition", by="someone else")
+    trail = audit.unit_trail(engine, "T-101")  # a TEST-L4 unit (tests/data/fleet.csv)
+    change = trail[-1]
+    assert (change["user"], change["origin"], change["action"]) == ("ada", "web:192.0.2.7",
+                                                                    "limits.change")
+    assert "service data, 2025 edition" in change["summary"]
+    assert change["detail"]["changed"] == ["min_compression_kpa"]
+    assert "limits.change" not in [e["action"] for e in audit.unit_trail(engine, "T-201")]
