@@ -397,27 +397,37 @@ def _reasons(fr: Frames, res: checks.CheckResult, pts: pd.DataFrame, fits: pd.Da
         cur = cur.assign(cross_planning=_not_before(cur["cross_planning"], cur["last_x"]))
         first = (cur[cur["cross_planning"].notna()].sort_values("cross_planning")
                  .groupby("unit_id").head(1).set_index("unit_id").reindex(soon.index))
+        first_cyl = first["cylinder"].to_numpy(dtype=float)
+        first_slope = first["slope"].to_numpy(dtype=float)
+        first_source = first["slope_source"].to_numpy(dtype=object)
+        early_h = soon["projected_hours_early"].to_numpy(dtype=float)
+        point_h = soon["projected_hours"].to_numpy(dtype=float)
+        last_h = soon["last_hours"].to_numpy(dtype=float)
+        per_week = soon["hours_per_week"].to_numpy(dtype=float)
+        early_d = [_fmt_date(d) for d in soon["projected_date_early"]]
+        point_d = [_fmt_date(d) for d in soon["projected_date"]]
         texts, numbers = [], []
-        for uid, row in soon.iterrows():
-            what = ("the lowest/highest ratio" if first.at[uid, "cylinder"] == SPREAD_CYLINDER
-                    else f"cylinder {int(first.at[uid, 'cylinder'])}")
-            if row["projected_hours_early"] <= row["last_hours"]:
+        for i in range(len(soon)):
+            cyl = int(first_cyl[i])
+            what = ("the lowest/highest ratio" if cyl == SPREAD_CYLINDER
+                    else f"cylinder {cyl}")
+            if early_h[i] <= last_h[i]:
                 texts.append(f"The wear trend of {what} is already at its limit by the last "
-                             f"test ({row['last_hours']:.0f} h). A planning aid, not a "
+                             f"test ({last_h[i]:.0f} h). A planning aid, not a "
                              "certification.")
             else:
                 texts.append(
                     f"The wear trend of {what} reaches its limit at about "
-                    f"{row['projected_hours_early']:.0f} h (conservative, 95 %), around "
-                    f"{_fmt_date(row['projected_date_early'])}; best estimate "
-                    f"{_fmt_date(row['projected_date'])}. A planning aid, not a "
+                    f"{early_h[i]:.0f} h (conservative, 95 %), around "
+                    f"{early_d[i]}; best estimate "
+                    f"{point_d[i]}. A planning aid, not a "
                     "certification.")
-            numbers.append({"cylinder": int(first.at[uid, "cylinder"]),
-                            "projected_hours": row["projected_hours"],
-                            "projected_hours_early": row["projected_hours_early"],
-                            "slope_kpa_per_h": first.at[uid, "slope"],
-                            "slope_source": first.at[uid, "slope_source"],
-                            "hours_per_week": row["hours_per_week"]})
+            numbers.append({"cylinder": cyl,
+                            "projected_hours": point_h[i],
+                            "projected_hours_early": early_h[i],
+                            "slope_kpa_per_h": first_slope[i],
+                            "slope_source": first_source[i],
+                            "hours_per_week": per_week[i]})
         parts.append(_reason_rows(soon.index.to_numpy(), "projected_limit", "plan", texts,
                                   numbers, soon["last_test_id"].to_numpy()))
 

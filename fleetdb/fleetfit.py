@@ -25,6 +25,7 @@ from fleetdb.trend import (
     pool_slopes,
     pooled_residual_sd,
     shrink,
+    t_ppf,
 )
 
 #: Columns of a family-parameters frame (index: group key).
@@ -44,7 +45,7 @@ def _stray_reading(
         keep = 1 - 1 / n[codes] - dx**2 / fit["sxx"][codes]  # 1 - leverage
         s2 = np.maximum(fit["sse"][codes] - resid**2 / keep, 0.0) / (n[codes] - 3)
         t_abs = np.nan_to_num(np.abs(resid) / np.sqrt(s2 * keep), nan=0.0, posinf=np.inf)
-        critical = stats.t.ppf(1 - alpha / (2 * n), np.where(n > 3, n - 3, np.nan))
+        critical = t_ppf(1 - alpha / (2 * n), np.where(n > 3, n - 3, np.nan))
     return (n > 3) & (_group_max(codes, t_abs, g) > critical)
 
 

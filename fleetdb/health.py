@@ -87,24 +87,36 @@ def _store(conn: Connection, result: Assessment, week: dt.date, day: dt.date,
         reasons.setdefault(int(uid), []).append({
             "code": code, "level": level, "text": text_, "numbers": numbers,
             "test_id": None if test_id is None or pd.isna(test_id) else int(test_id)})
-    rows = []
-    for uid, u in units.iterrows():
-        rs = reasons.get(int(uid), [])
-        rows.append({
-            "unit_id": int(uid), "week_start": week, "as_of": day, "level": u["level"],
-            "main_code": u["main_code"] if isinstance(u["main_code"], str) else None,
-            "main_text": (u["main_text"][:500] if isinstance(u["main_text"], str) else None),
-            "reasons_json": json.dumps(rs, ensure_ascii=False),
-            "last_test_id": None if pd.isna(u["last_test_id"]) else int(u["last_test_id"]),
-            "last_tested_at": None if pd.isna(u["last_tested_at"])
-            else pd.Timestamp(u["last_tested_at"]).to_pydatetime(),
-            "last_hours": _float(u["last_hours"]),
-            "projected_hours": _float(u["projected_hours"]),
-            "projected_hours_early": _float(u["projected_hours_early"]),
-            "projected_date": _date(u["projected_date"]),
-            "projected_date_early": _date(u["projected_date_early"]),
-            "wear": _float(u["wear_kpa_per_1000h"]), "at": at,
-            "limits_version": _int(u.get("limits_version"))})
+    def floats(col: str) -> list[float | None]:
+        return [None if v != v else v for v in units[col].to_numpy(dtype=float).tolist()]
+
+    def dates(col: str) -> list[dt.date | None]:
+        return [None if pd.isna(v) else v.date() for v in pd.to_datetime(units[col])]
+
+    def texts(col: str, width: int | None = None) -> list[str | None]:
+        return [(v[:width] if width else v) if isinstance(v, str) else None
+                for v in units[col].to_numpy(dtype=object)]
+
+    last_ids = [None if v != v else int(v)
+                for v in units["last_test_id"].to_numpy(dtype=float).tolist()]
+    last_at = [None if pd.isna(v) else v.to_pydatetime()
+               for v in pd.to_datetime(units["last_tested_at"])]
+    columns = {
+        "unit_id": [int(u) for u in units.index], "level": units["level"].tolist(),
+        "main_code": texts("main_code"), "main_text": texts("main_text", 500),
+        "last_test_id": last_ids, "last_tested_at": last_at,
+        "last_hours": floats("last_hours"), "projected_hours": floats("projected_hours"),
+        "projected_hours_early": floats("projected_hours_early"),
+        "projected_date": dates("projected_date"),
+        "projected_date_early": dates("projected_date_early"),
+        "wear": floats("wear_kpa_per_1000h"),
+        "limits_version": [_int(v) for v in units["limits_version"]]
+        if "limits_version" in units else [None] * len(units)}
+    names = list(columns)
+    rows = [{**dict(zip(names, values, strict=True)), "week_start": week, "as_of": day,
+             "reasons_json": json.dumps(reasons.get(values[0], []), ensure_ascii=False),
+             "at": at}
+            for values in zip(*columns.values(), strict=True)]
     if rows:
         conn.execute(text(
             "INSERT INTO health_snapshot (unit_id, week_start, as_of, level, main_code, "

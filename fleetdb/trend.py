@@ -97,6 +97,26 @@ def _prepare(
     return codes[rows], keys, xa[rows], ya[rows], rows
 
 
+def t_ppf(q: ArrayLike | float, df: ArrayLike | float) -> np.ndarray:
+    """``scipy.stats.t.ppf`` elementwise, computed once per distinct (q, df) pair.
+
+    The fleet has millions of readings but few distinct levels and degrees of freedom;
+    scipy's quantile is slow per element, so this is the same values at a fraction of the
+    cost.
+    """
+    q_arr, df_arr = np.broadcast_arrays(np.asarray(q, dtype=float), np.asarray(df, dtype=float))
+    if q_arr.size < 64:
+        return np.asarray(stats.t.ppf(q_arr, df_arr), dtype=float)
+    q_codes, q_uniq = pd.factorize(q_arr.ravel(), use_na_sentinel=False)
+    df_codes, df_uniq = pd.factorize(df_arr.ravel(), use_na_sentinel=False)
+    pair_codes, pairs = pd.factorize(q_codes.astype(np.int64) * len(df_uniq) + df_codes)
+    with np.errstate(invalid="ignore"):
+        values = np.asarray(stats.t.ppf(np.asarray(q_uniq, dtype=float)[pairs // len(df_uniq)],
+                                        np.asarray(df_uniq, dtype=float)[pairs % len(df_uniq)]),
+                            dtype=float)
+    return values[pair_codes].reshape(q_arr.shape)
+
+
 def _gsum(codes: np.ndarray, values: np.ndarray | None, n_groups: int) -> np.ndarray:
     return np.bincount(codes, weights=values, minlength=n_groups).astype(float)
 
@@ -314,8 +334,8 @@ def _projection(
     resid_df = np.asarray(resid_df, dtype=float)
     with np.errstate(invalid="ignore", divide="ignore"):
         df = np.where(resid_df > 0, resid_df, np.nan)
-        t_one = stats.t.ppf(confidence, df)
-        t_two = stats.t.ppf(1 - (1 - confidence) / 2, df)
+        t_one = t_ppf(confidence, df)
+        t_two = t_ppf(1 - (1 - confidence) / 2, df)
         common = (x_mean, level, slope, slope_var, np.asarray(resid_sd) ** 2, n, limit)
         planning, _ = crossing_hours(*common, t_one, k=1.0)
         pi_early, pi_late = crossing_hours(*common, t_two, k=1.0)
@@ -474,7 +494,7 @@ def _judge_blocks(
         sse = np.maximum(syy - slope * sxy, 0.0)
         sd = np.where(m >= 3, np.sqrt(sse / (m - 2)), np.where(m == 2, noise_sd[work], np.nan))
         df = np.where(m >= 3, m - 2, np.where(m == 2, noise_df[work], np.nan))
-        half = stats.t.ppf(t_level[work], np.where(df > 0, df, np.nan)) * sd * np.sqrt(
+        half = t_ppf(t_level[work], np.where(df > 0, df, np.nan)) * sd * np.sqrt(
             1 + 1 / m + (xc - x_bar) ** 2 / sxx)
     lower = expected - half
     judged = (m >= 2) & (sxx > 0) & np.isfinite(lower)
