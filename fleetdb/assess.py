@@ -29,6 +29,7 @@ Rules chosen here (b, common practice, no published source):
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Any
 
@@ -128,6 +129,13 @@ def _hours_per_week(fr: Frames, as_of: pd.Timestamp) -> pd.Series:
 
 
 def _jsonable(value: Any) -> Any:
+    kind = type(value)  # the common exact types first: this runs per number of every reason
+    if kind is float or kind is np.float64:
+        return round(float(value), 4) if math.isfinite(value) else None
+    if kind is str or kind is int or kind is bool or value is None:
+        return value
+    if kind is dict:
+        return {k: _jsonable(v) for k, v in value.items()}
     if isinstance(value, dict):
         return {k: _jsonable(v) for k, v in value.items()}
     if isinstance(value, (list, tuple, np.ndarray)):
@@ -146,17 +154,24 @@ def _jsonable(value: Any) -> Any:
 def _series_points(fr: Frames, res: checks.CheckResult, as_of: pd.Timestamp) -> pd.DataFrame:
     """Dry compression readings and per-test spread, keyed into wear series."""
     tests, fams = fr.tests, fr.families
-    rd = fr.readings[fr.readings["kind"] == "compression"]
-    t = tests.reindex(rd["test_id"].to_numpy())
+    rd = fr.readings[(fr.readings["kind"] == "compression").to_numpy()]
+    at = tests.index.get_indexer(rd["test_id"].to_numpy())
+    if (at < 0).any():  # readings of tests not given (frames.load never has them)
+        rd, at = rd[at >= 0], at[at >= 0]
+    rd_test = rd["test_id"].to_numpy()
+
+    def of_test(col: str, dtype: Any = None) -> np.ndarray:
+        return tests[col].to_numpy(dtype=dtype)[at]
+
+    value = rd["value"].to_numpy()
+    trusted = res.tests["trustworthy"].reindex(tests.index).fillna(False).to_numpy(dtype=bool)
     pts = pd.DataFrame({
-        "test_id": rd["test_id"].to_numpy(), "unit_id": t["unit_id"].to_numpy(),
-        "family_id": t["family_id"].to_numpy(), "tested_at": t["tested_at"].to_numpy(),
-        "hours": t["hours"].to_numpy(), "cylinder": rd["cylinder"].to_numpy(dtype=float),
-        "value_kpa": rd["value"].to_numpy(),
-        "value_sl": rd["value"].to_numpy() * (101.325 / t["baro_kpa"].to_numpy()),
-        "voided": t["voided"].to_numpy(dtype=bool),
-        "trustworthy": res.tests["trustworthy"].reindex(rd["test_id"].to_numpy())
-        .fillna(False).to_numpy(dtype=bool)})
+        "test_id": rd_test, "unit_id": of_test("unit_id"),
+        "family_id": of_test("family_id"), "tested_at": of_test("tested_at"),
+        "hours": of_test("hours"), "cylinder": rd["cylinder"].to_numpy(dtype=float,
+                                                                        na_value=np.nan),
+        "value_kpa": value, "value_sl": value * (101.325 / of_test("baro_kpa")),
+        "voided": of_test("voided", bool), "trustworthy": trusted[at]})
     pts["limit"] = fams["min_compression_kpa"].reindex(pts["family_id"]).to_numpy(float)
     ratio_fams = fams.index[fams["spread_rule"] == "ratio"]
     summ = res.tests.join(tests[["unit_id", "family_id", "tested_at", "hours", "voided"]])
@@ -184,10 +199,11 @@ def _series_points(fr: Frames, res: checks.CheckResult, as_of: pd.Timestamp) -> 
     pts["group"] = np.where(pts["cylinder"] == SPREAD_CYLINDER, -1 - pts["family_id"],
                             pts["family_id"])
     # Which event segment is current for each unit and cylinder as of now.
-    now = pts[["unit_id", "cylinder"]].drop_duplicates().assign(tested_at=as_of)
-    now["current_seg"] = _event_segments(now, fr.events, cyl_count)
-    pts = pts.merge(now[["unit_id", "cylinder", "current_seg"]], on=["unit_id", "cylinder"],
-                    how="left")
+    pair = pts["unit_id"].to_numpy(np.int64) * 1000 + pts["cylinder"].to_numpy(np.int64)
+    pair_codes, pair_keys = pd.factorize(pair)
+    now = pd.DataFrame({"unit_id": pair_keys // 1000, "cylinder": pair_keys % 1000,
+                        "tested_at": as_of})
+    pts["current_seg"] = _event_segments(now, fr.events, cyl_count)[pair_codes]
     pts["current"] = pts["event_seg"] == pts["current_seg"]
     return pts
 

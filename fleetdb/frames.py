@@ -117,7 +117,7 @@ def load(engine: Engine, unit_ids: list[int] | None = None,
         + (" JOIN test t ON t.id = r.test_id" + _unit_filter(unit_ids, "t.unit_id")
            if unit_ids is not None else ""), whole_fleet=unit_ids is None)
     readings = readings[readings["test_id"].isin(tests.index)]
-    readings["kind"] = readings["kind"].astype(object)
+    readings["kind"] = readings["kind"].astype("category")
     readings["cylinder"] = readings["cylinder"].astype("Int64").replace(0, pd.NA)
     readings["value"] = readings["value"].astype(float)
 

@@ -81,12 +81,14 @@ def _store(conn: Connection, result: Assessment, week: dt.date, day: dt.date,
     at = stamp(conn)
     reasons: dict[int, list[dict[str, Any]]] = {}
     rr = result.reasons
+    test_ids = [None if v is pd.NA else int(v)
+                for v in pd.array(rr["test_id"].to_numpy(dtype=object), dtype="Int64").tolist()]
     for uid, code, level, text_, numbers, test_id in zip(
-            rr["unit_id"], rr["code"], rr["level"], rr["text"], rr["numbers"], rr["test_id"],
-            strict=True):
+            rr["unit_id"].tolist(), rr["code"], rr["level"], rr["text"], rr["numbers"],
+            test_ids, strict=True):
         reasons.setdefault(int(uid), []).append({
             "code": code, "level": level, "text": text_, "numbers": numbers,
-            "test_id": None if test_id is None or pd.isna(test_id) else int(test_id)})
+            "test_id": test_id})
     def floats(col: str) -> list[float | None]:
         return [None if v != v else v for v in units[col].to_numpy(dtype=float).tolist()]
 
@@ -113,8 +115,9 @@ def _store(conn: Connection, result: Assessment, week: dt.date, day: dt.date,
         "limits_version": [_int(v) for v in units["limits_version"]]
         if "limits_version" in units else [None] * len(units)}
     names = list(columns)
+    encode = json.JSONEncoder(ensure_ascii=False).encode
     rows = [{**dict(zip(names, values, strict=True)), "week_start": week, "as_of": day,
-             "reasons_json": json.dumps(reasons.get(values[0], []), ensure_ascii=False),
+             "reasons_json": encode(reasons.get(values[0], [])),
              "at": at}
             for values in zip(*columns.values(), strict=True)]
     if rows:
