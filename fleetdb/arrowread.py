@@ -36,16 +36,31 @@ def read_sqlite(path: str, sql: str) -> pd.DataFrame:
     :param sql: a SELECT statement.
     :raises RuntimeError: when the child fails (its message included).
     """
+    return read_sqlite_many(path, [sql])[0]
+
+
+def read_sqlite_many(path: str, queries: list[str]) -> list[pd.DataFrame]:
+    """Run several queries in one child process (one start-up); a DataFrame each.
+
+    The queries must return no NULLs (see :func:`read_sqlite`); wrap a nullable column
+    in ``COALESCE`` beside an ``IS NULL`` flag.
+    """
     import pyarrow as pa
 
     fd, out_path = tempfile.mkstemp(prefix="fleetdb-read-", suffix=".arrow")
     os.close(fd)
+    outs = [f"{out_path}.{i}" for i in range(len(queries))]
     try:
-        done = subprocess.run([sys.executable, "-m", "fleetdb._arrow_child", path, sql,
-                               out_path], capture_output=True, text=True, check=False)
+        done = subprocess.run([sys.executable, "-m", "fleetdb._arrow_child", path, out_path,
+                               *queries], capture_output=True, text=True, check=False)
         if done.returncode != 0:
             raise RuntimeError(f"Arrow read of {path} failed: {done.stderr.strip()[-500:]}")
-        with pa.memory_map(out_path, "r") as source:
-            return pa.ipc.open_file(source).read_all().to_pandas()
+        frames = []
+        for out in outs:
+            with pa.memory_map(out, "r") as source:
+                frames.append(pa.ipc.open_file(source).read_all().to_pandas())
+        return frames
     finally:
-        os.unlink(out_path)
+        for leftover in (out_path, *outs):
+            if os.path.exists(leftover):
+                os.unlink(leftover)

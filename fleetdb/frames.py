@@ -49,21 +49,59 @@ def _sqlite_file(engine: Engine) -> str | None:
 
 
 #: Above this many readings a SQLite file is read through Arrow in a child process.
-ARROW_READ_MIN_ROWS = 1_000_000
+ARROW_READ_MIN_ROWS = 200_000
 
 
-def _readings_query(engine: Engine, sql: str, whole_fleet: bool) -> pd.DataFrame:
-    """The big read: a large SQLite read goes through Arrow (see :mod:`fleetdb.arrowread`).
+def _arrow_source(engine: Engine, whole_fleet: bool) -> str | None:
+    """The SQLite file to read through Arrow (see :mod:`fleetdb.arrowread`), or None.
 
-    The query must return no NULLs: ADBC infers column types from the first rows.
+    Only whole-fleet reads of a large SQLite file go that way.
     """
     path = _sqlite_file(engine)
     if path is not None and whole_fleet and arrowread.available():
         with engine.connect() as conn:
             rows = conn.execute(text("SELECT COALESCE(MAX(id), 0) FROM reading")).scalar_one()
         if rows >= ARROW_READ_MIN_ROWS:
-            return arrowread.read_sqlite(path, sql)
-    return _query(engine, sql)
+            return path
+    return None
+
+
+#: Nullable columns of the tests query, with the stand-in each takes for the Arrow read.
+_TEST_NULLABLE = {"t.battery_v": ("battery_v", "0.0"), "t.crank_rpm": ("crank_rpm", "0.0"),
+                  "t.engine_temp_c": ("engine_temp_c", "0.0"), "t.baro_kpa": ("baro_kpa", "0.0"),
+                  "t.throttle_open": ("throttle_open", "0"), "t.technician": ("technician", "''"),
+                  "t.note": ("note", "''"), "v.reason": ("void_reason", "''"),
+                  "v.voided_at": ("voided_at", "''")}
+_TESTS_FROM = " FROM test t LEFT JOIN test_void v ON v.test_id = t.id"
+
+
+def _tests_sql(null_safe: bool) -> str:
+    """The tests query; ``null_safe``: every nullable column as a stand-in plus a NULL flag.
+
+    ADBC infers a column's type from its first rows and fails on a later value of another
+    type, so the Arrow read never returns NULL; :func:`_restore_nulls` puts them back.
+    """
+    columns = ["t.id AS test_id", "t.unit_id", "t.tested_at", "t.hours"]
+    for expr, (name, stand_in) in _TEST_NULLABLE.items():
+        columns += ([f"COALESCE({expr}, {stand_in}) AS {name}", f"({expr} IS NULL) AS {name}__null"]
+                    if null_safe else [f"{expr} AS {name}"])
+    columns.insert(columns.index("t.note AS note") + 1 if not null_safe
+                   else columns.index("(t.note IS NULL) AS note__null") + 1, "t.source")
+    return "SELECT " + ", ".join(columns) + _TESTS_FROM
+
+
+def _restore_nulls(tests: pd.DataFrame) -> pd.DataFrame:
+    """Undo :func:`_tests_sql`'s stand-ins: NULL where the flag says so."""
+    for name, _ in _TEST_NULLABLE.values():
+        null = tests.pop(f"{name}__null").to_numpy(dtype=bool)
+        column = tests[name]
+        if null.all():  # as the plain read gives a column of nothing but NULLs
+            tests[name] = pd.Series([None] * len(tests), index=tests.index, dtype=object)
+        elif pd.api.types.is_string_dtype(column.dtype):
+            tests[name] = column.where(~null)
+        else:
+            tests[name] = column.astype(float).where(~null)
+    return tests
 
 
 def _unit_filter(unit_ids: list[int] | None, column: str) -> str:
@@ -91,11 +129,17 @@ def load(engine: Engine, unit_ids: list[int] | None = None,
                    + _unit_filter(unit_ids, "u.id")).set_index("unit_id")
     units["site_baro_kpa"] = atmosphere.pressure_kpa(units["elevation_m"].astype(float))
 
-    tests = _query(engine, "SELECT t.id AS test_id, t.unit_id, t.tested_at, t.hours, "
-                   "t.battery_v, t.crank_rpm, t.engine_temp_c, t.baro_kpa, t.throttle_open, "
-                   "t.technician, t.note, t.source, v.reason AS void_reason, "
-                   "v.voided_at FROM test t LEFT JOIN test_void v ON v.test_id = t.id"
-                   + _unit_filter(unit_ids, "t.unit_id"))
+    arrow_path = _arrow_source(engine, unit_ids is None)
+    readings_sql = ("SELECT r.test_id, r.kind, COALESCE(r.cylinder, 0) AS cylinder, "
+                    "r.value_si AS value FROM reading r"
+                    + (" JOIN test t ON t.id = r.test_id" + _unit_filter(unit_ids, "t.unit_id")
+                       if unit_ids is not None else ""))
+    if arrow_path is not None:
+        tests, readings = arrowread.read_sqlite_many(arrow_path, [_tests_sql(True), readings_sql])
+        tests = _restore_nulls(tests)
+    else:
+        tests = _query(engine, _tests_sql(False) + _unit_filter(unit_ids, "t.unit_id"))
+        readings = _query(engine, readings_sql)
     tests["tested_at"] = pd.to_datetime(tests["tested_at"]).astype("datetime64[us]")
     if as_of is not None:
         tests = tests[tests["tested_at"] <= as_of]
@@ -111,11 +155,6 @@ def load(engine: Engine, unit_ids: list[int] | None = None,
     for col in ("hours", "battery_v", "crank_rpm", "engine_temp_c"):
         tests[col] = tests[col].astype(float)
 
-    readings = _readings_query(
-        engine, "SELECT r.test_id, r.kind, COALESCE(r.cylinder, 0) AS cylinder, "
-        "r.value_si AS value FROM reading r"
-        + (" JOIN test t ON t.id = r.test_id" + _unit_filter(unit_ids, "t.unit_id")
-           if unit_ids is not None else ""), whole_fleet=unit_ids is None)
     readings = readings[readings["test_id"].isin(tests.index)]
     readings["kind"] = readings["kind"].astype("category")
     readings["cylinder"] = readings["cylinder"].astype("Int64").replace(0, pd.NA)

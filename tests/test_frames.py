@@ -39,4 +39,8 @@ def test_load_through_arrow_equals_plain(sqlite_url: str, monkeypatch) -> None: 
     fast = frames.load(engine)
     pd.testing.assert_frame_equal(fast.readings.reset_index(drop=True),
                                   plain.readings.reset_index(drop=True))
+    # The tests come through Arrow too, with NULLs (no barometer, no technician) restored.
+    assert plain.tests["baro_measured"].any() and not plain.tests["baro_measured"].all()
+    assert plain.tests["note"].isna().any()
+    pd.testing.assert_frame_equal(fast.tests, plain.tests)
     engine.dispose()
