@@ -56,6 +56,9 @@ WATCH_PATTERNS = ("single_low", "adjacent_pair_low", "non_adjacent_pair_low", "p
                   "all_low_wear", "rings_suspected", "valves_suspected", "leakdown_worn",
                   "leakdown_fail", "leakdown_above_median", "relative_low", "idle_vacuum_low",
                   "wet_test_on_diesel")
+#: Up to this many tests, one pass writes every sentence (cheaper than picking the tests
+#: health reads; the extra sentences are never read by a refresh).
+ONE_PASS_TESTS = 2_000
 SERIES_STRIDE = 100_000  # series key = unit * stride + cylinder * 1000 + event segment
 SPREAD_CYLINDER = 99  # pseudo-cylinder of the spread series
 
@@ -223,7 +226,8 @@ def assess(fr: Frames, as_of: pd.Timestamp, *, horizon_weeks: int = HORIZON_WEEK
     """
     res = _check(fr, all_findings)
     pts = _series_points(fr, res, as_of)
-    fit_in = pts[pts["in_fit"]]
+    fit_in = pts.loc[pts["in_fit"].to_numpy(), ["series", "group", "hours", "value_sl", "limit",
+                                                 "step_level", "min_drop"]]
     fits, steps = fleetfit.fit_fleet(fit_in, series="series", group="group", x="hours",
                                   y="value_sl", limit="limit", step_confidence="step_level",
                                   min_drop="min_drop", family_params=family_params,
@@ -324,7 +328,7 @@ def _judged_tests(fr: Frames, summ: pd.DataFrame) -> pd.Series:
 
 def _check(fr: Frames, all_findings: bool) -> checks.CheckResult:
     """Judge every test; write sentences for all, or only for the tests health reads."""
-    if all_findings:
+    if all_findings or len(fr.tests) <= ONE_PASS_TESTS:
         return checks.check_tests(fr.families, fr.tests, fr.readings)
     quiet = checks.check_tests(fr.families, fr.tests, fr.readings,
                                findings_for=np.zeros(len(fr.tests), dtype=bool))

@@ -505,6 +505,26 @@ def _judge_blocks(
             "expected": expected + ys[block], "lower_bound": lower + ys[block]}
 
 
+#: Readings judged at once in step detection: bounds its memory on a large fleet.
+_JUDGE_CHUNK = 400_000
+
+
+def _judge_chunked(
+    xs: np.ndarray, ys: np.ndarray, work: np.ndarray, block: np.ndarray, *rest: np.ndarray,
+) -> dict[str, np.ndarray]:
+    """:func:`_judge_blocks` a slice of whole blocks at a time (each block is judged alone,
+    so the result is the same; only the memory held at once is smaller)."""
+    if len(work) <= _JUDGE_CHUNK:
+        return _judge_blocks(xs, ys, work, block, *rest)
+    starts = np.flatnonzero(np.r_[True, block[1:] != block[:-1]])
+    at = np.searchsorted(starts, np.arange(_JUDGE_CHUNK, len(work), _JUDGE_CHUNK))
+    cuts = np.unique(starts[at[at < len(starts)]])
+    edges = np.r_[0, cuts[cuts > 0], len(work)]
+    parts = [_judge_blocks(xs, ys, work[a:b], block[a:b], *rest)
+             for a, b in zip(edges[:-1], edges[1:], strict=True) if b > a]
+    return {key: np.concatenate([part[key] for part in parts]) for key in parts[0]}
+
+
 def detect_steps(
     series: ArrayLike, x: ArrayLike, y: ArrayLike, *, noise_sd: ArrayLike | None = None,
     noise_df: ArrayLike | None = None, confidence: float | ArrayLike = 0.95,
@@ -554,7 +574,8 @@ def detect_steps(
     work = positions
     while work.size:
         block = seg_start[work]
-        check = _judge_blocks(xs, ys, work, block, sd_sorted, df_sorted, t_sorted, drop_sorted)
+        check = _judge_chunked(xs, ys, work, block, sd_sorted, df_sorted, t_sorted,
+                               drop_sorted)
         flagged = work[check["step"]]
         blocks_hit, first = np.unique(block[check["step"]], return_index=True)
         cut = np.full(n, n)  # per block start: position of its first step (n: none)

@@ -6,7 +6,12 @@ module's fetchall into a DataFrame, then a closed-form numpy OLS per cylinder se
 projections, levels, snapshot). Each runs in its own child process; we report median wall
 time, peak memory and the ratio. Goals: ours no slower than the baseline, peak under 2 GB.
 
-    python -m tests.bench.bench_refresh [--small] [--units N] [--repeat R]
+Then, on the same store: a test logged on each of ``--samples`` units and that unit
+refreshed (``health.refresh_units``, what logging a test runs), beside a baseline in the
+same process: a plain SELECT of the unit's compression readings and a numpy OLS per
+cylinder. Goal: under 100 ms median.
+
+    python -m tests.bench.bench_refresh [--small] [--units N] [--repeat R] [--samples S]
 """
 
 from __future__ import annotations
@@ -15,6 +20,7 @@ import argparse
 import json
 import shutil
 import statistics
+import subprocess
 import sys
 import tempfile
 import time
@@ -50,6 +56,51 @@ def _baseline(path: str) -> None:
     print(json.dumps({"series": g, "finite_slopes": int(np.isfinite(slope).sum())}))
 
 
+ONE_UNIT_SQL = ("SELECT r.cylinder, t.hours, r.value_si FROM reading r JOIN test t ON "
+                "t.id = r.test_id WHERE t.unit_id = ? AND r.kind = 'compression'")
+
+
+def _one_unit(path: str, samples: int) -> None:
+    """Log a test on each of ``samples`` units, then time refreshing that unit, interleaved
+    with the baseline: one plain SELECT of the unit's compression readings and a numpy OLS
+    per cylinder, on the same store, in the same process. Prints the times as JSON (ms).
+    """
+    import random
+    import sqlite3
+
+    import numpy as np
+
+    from fleetdb import db, health, logbook
+
+    engine = db.make_engine(f"sqlite:///{path}")
+    health.refresh_fleet(engine)  # the stored week and family statistics a refresh pools with
+    plain = sqlite3.connect(path)
+    units = plain.execute("SELECT u.id, u.fleet_no, f.cylinders, MAX(t.tested_at), "
+                          "MAX(t.hours) FROM unit u JOIN engine_family f ON f.id = u.family_id "
+                          "JOIN test t ON t.unit_id = u.id GROUP BY u.id").fetchall()
+    picked = random.Random(7).sample(units, min(samples, len(units)))
+    ours, base = [], []
+    for uid, fleet_no, cylinders, last_at, last_hours in picked:
+        when = str(np.datetime64(last_at[:16]) + np.timedelta64(30, "D")).replace("T", " ")
+        logbook.log_test(engine, fleet_no, when, f"{last_hours + 150:.1f}",
+                         [logbook.TypedReading("compression", c, "150", "psi")
+                          for c in range(1, cylinders + 1)],
+                         conditions={"battery_v": "10.5", "crank_rpm": "250",
+                                     "engine_temp_c": "80"})
+        start = time.perf_counter()
+        rows = plain.execute(ONE_UNIT_SQL, (uid,)).fetchall()
+        cyl, x, y = (np.array(col, dtype=float) for col in zip(*rows, strict=True))
+        for c in np.unique(cyl):
+            xs, ys = x[cyl == c], y[cyl == c]
+            dx = xs - xs.mean()
+            _ = (dx * (ys - ys.mean())).sum() / (dx * dx).sum()
+        base.append((time.perf_counter() - start) * 1000)
+        start = time.perf_counter()
+        health.refresh_units(engine, [uid])
+        ours.append((time.perf_counter() - start) * 1000)
+    print(json.dumps({"units": len(picked), "ours_ms": ours, "baseline_ms": base}))
+
+
 def _ours(path: str) -> None:
     from fleetdb import db, health
 
@@ -74,8 +125,10 @@ def cached_store(units: int) -> tuple[Path, dict]:
     return store, counts
 
 
-def main(small: bool = False, units: int | None = None, repeat: int | None = None) -> None:
-    """Build (or reuse) the synthetic store, then time baseline and refresh, interleaved."""
+def main(small: bool = False, units: int | None = None, repeat: int | None = None,
+         samples: int = 10) -> None:
+    """Build (or reuse) the synthetic store; time baseline and full refresh, interleaved;
+    then ``samples`` one-unit refreshes after a logged test beside their baseline."""
     units = units or (300 if small else 20_000)
     repeat = repeat or (1 if small else 3)
     store, counts = cached_store(units)
@@ -90,6 +143,12 @@ def main(small: bool = False, units: int | None = None, repeat: int | None = Non
                 if m.returncode != 0:
                     raise SystemExit(f"{name} failed")
                 results[name].append((m.seconds, m.peak_rss_bytes))
+        one = subprocess.run([sys.executable, "-m", "tests.bench.bench_refresh", "--one-unit",
+                              db_path, "--samples", str(samples)], capture_output=True,
+                             text=True, check=False, cwd=Path(__file__).resolve().parents[2])
+        if one.returncode != 0:
+            raise SystemExit(f"one-unit refresh failed: {one.stderr[-2000:]}")
+        one_unit = json.loads(one.stdout.strip().splitlines()[-1])
     base = statistics.median(s for s, _ in results["baseline"])
     ours = statistics.median(s for s, _ in results["ours"])
     table = {name: {"median_s": round(statistics.median(s for s, _ in runs), 2),
@@ -100,10 +159,17 @@ def main(small: bool = False, units: int | None = None, repeat: int | None = Non
     for name, row in table.items():
         print(f"{name:10}{row['median_s']:>10}{row['peak_mb']:>10}")
     print(f"ratio ours/baseline: {ours / base:.2f}  (goal <= 1.00; peak goal < 2048 MB)")
+    one_ours = statistics.median(one_unit["ours_ms"])
+    one_base = statistics.median(one_unit["baseline_ms"])
+    print(f"one unit after a logged test ({one_unit['units']} units): refresh_units median "
+          f"{one_ours:.1f} ms; baseline (SELECT of the unit's readings + numpy OLS) median "
+          f"{one_base:.1f} ms; ratio {one_ours / one_base:.1f}  (goal < 100 ms)")
     OUT.mkdir(exist_ok=True)
     stamp = time.strftime("%Y%m%dT%H%M%SZ", time.gmtime())
     (OUT / f"refresh-{units}u-{stamp}.json").write_text(json.dumps(
-        {"units": units, "counts": counts, "results": table, "ratio": ours / base}, indent=1))
+        {"units": units, "counts": counts, "results": table, "ratio": ours / base,
+         "one_unit": {"median_ms": one_ours, "baseline_median_ms": one_base, **one_unit}},
+        indent=1))
 
 
 if __name__ == "__main__":
@@ -113,10 +179,15 @@ if __name__ == "__main__":
     parser.add_argument("--repeat", type=int)
     parser.add_argument("--baseline", metavar="DB")
     parser.add_argument("--ours", metavar="DB")
+    parser.add_argument("--one-unit", metavar="DB")
+    parser.add_argument("--samples", type=int, default=10,
+                        help="units logged and refreshed one at a time (default 10)")
     args = parser.parse_args()
     if args.baseline:
         _baseline(args.baseline)
+    elif args.one_unit:
+        _one_unit(args.one_unit, args.samples)
     elif args.ours:
         _ours(args.ours)
     else:
-        main(args.small, args.units, args.repeat)
+        main(args.small, args.units, args.repeat, args.samples)
