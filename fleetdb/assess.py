@@ -59,6 +59,8 @@ WATCH_PATTERNS = ("single_low", "adjacent_pair_low", "non_adjacent_pair_low", "p
 #: Up to this many tests, one pass writes every sentence (cheaper than picking the tests
 #: health reads; the extra sentences are never read by a refresh).
 ONE_PASS_TESTS = 2_000
+#: From this many readings the fits run one pooling group at a time (bounds memory).
+FIT_BY_GROUP_ROWS = 500_000
 SERIES_STRIDE = 100_000  # series key = unit * stride + cylinder * 1000 + event segment
 SPREAD_CYLINDER = 99  # pseudo-cylinder of the spread series
 
@@ -211,6 +213,29 @@ def _series_points(fr: Frames, res: checks.CheckResult, as_of: pd.Timestamp) -> 
     return pts
 
 
+def _fit_by_group(fit_in: pd.DataFrame,
+                  family_params: pd.DataFrame | None) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """``fleetfit.fit_fleet`` one pooling group (family, or a family's spread) at a time.
+
+    Every step of the fit works within a series or a group, so this gives the same result
+    as one call over the fleet while holding only one group's working arrays at a time.
+    """
+    def fit(rows: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
+        return fleetfit.fit_fleet(rows, series="series", group="group", x="hours",
+                                  y="value_sl", limit="limit", step_confidence="step_level",
+                                  min_drop="min_drop", family_params=family_params,
+                                  return_points=True)
+
+    groups = fit_in["group"].to_numpy()
+    keys = np.unique(groups)
+    if len(fit_in) < FIT_BY_GROUP_ROWS or len(keys) < 2:
+        return fit(fit_in)
+    parts = [fit(fit_in[groups == key]) for key in keys]
+    fits = pd.concat([f for f, _ in parts]).sort_index()
+    steps = pd.concat([p for _, p in parts]).reindex(fit_in.index)
+    return fits, steps
+
+
 def assess(fr: Frames, as_of: pd.Timestamp, *, horizon_weeks: int = HORIZON_WEEKS,
            family_params: pd.DataFrame | None = None,
            all_findings: bool = False) -> Assessment:
@@ -228,10 +253,7 @@ def assess(fr: Frames, as_of: pd.Timestamp, *, horizon_weeks: int = HORIZON_WEEK
     pts = _series_points(fr, res, as_of)
     fit_in = pts.loc[pts["in_fit"].to_numpy(), ["series", "group", "hours", "value_sl", "limit",
                                                  "step_level", "min_drop"]]
-    fits, steps = fleetfit.fit_fleet(fit_in, series="series", group="group", x="hours",
-                                  y="value_sl", limit="limit", step_confidence="step_level",
-                                  min_drop="min_drop", family_params=family_params,
-                                  return_points=True)
+    fits, steps = _fit_by_group(fit_in, family_params)
     pts["step"] = False
     pts["expected"] = np.nan
     pts["lower_bound"] = np.nan

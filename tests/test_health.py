@@ -128,3 +128,24 @@ def test_logging_a_test_refreshes_the_unit(demo: Engine) -> None:
     verdict = health.test_verdict(demo, test_id)
     assert verdict["trustworthy"] and verdict["ratio"] < 0.75
     assert {"below_minimum", "single_low"} <= {f["code"] for f in verdict["findings"]}
+
+
+def test_large_fleet_paths_give_the_same_assessment(demo: Engine, monkeypatch) -> None:  # noqa: ANN001
+    # Self-consistency: the paths a large fleet takes to bound memory (fits one pooling
+    # group at a time, steps judged a slice of whole series at a time, sentences only for
+    # the tests health reads) give exactly the assessment of the direct path.
+    from fleetdb import trend
+
+    moment = pd.Timestamp(AS_OF) + pd.Timedelta(hours=23, minutes=59, seconds=59)
+    fr = frames.load(demo, as_of=moment)
+    monkeypatch.setattr(assess, "ONE_PASS_TESTS", 10**9)
+    direct = assess.assess(fr, moment)
+    monkeypatch.setattr(assess, "FIT_BY_GROUP_ROWS", 0)
+    monkeypatch.setattr(assess, "ONE_PASS_TESTS", 0)
+    monkeypatch.setattr(trend, "_JUDGE_CHUNK", 7)
+    large = assess.assess(fr, moment)
+    assert direct.fits["family"].nunique() > 2 and direct.points["step"].any()
+    pd.testing.assert_frame_equal(large.fits, direct.fits)
+    pd.testing.assert_frame_equal(large.points, direct.points)
+    pd.testing.assert_frame_equal(large.units, direct.units)
+    pd.testing.assert_frame_equal(large.reasons, direct.reasons)
