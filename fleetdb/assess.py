@@ -213,26 +213,33 @@ def _series_points(fr: Frames, res: checks.CheckResult, as_of: pd.Timestamp) -> 
     return pts
 
 
-def _fit_by_group(fit_in: pd.DataFrame,
+_FIT_COLUMNS = ["series", "group", "hours", "value_sl", "limit", "step_level", "min_drop"]
+_STEP_COLUMNS = ["step", "expected", "lower_bound"]
+
+
+def _fit_by_group(pts: pd.DataFrame, in_fit: np.ndarray,
                   family_params: pd.DataFrame | None) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """``fleetfit.fit_fleet`` one pooling group (family, or a family's spread) at a time.
+    """``fleetfit.fit_fleet`` of the points in the fits, one pooling group (family, or a
+    family's spread) at a time on a large fleet.
 
     Every step of the fit works within a series or a group, so this gives the same result
     as one call over the fleet while holding only one group's working arrays at a time.
+    :returns: the fits and, per point in the fits (in order), its step judgement.
     """
-    def fit(rows: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
-        return fleetfit.fit_fleet(rows, series="series", group="group", x="hours",
-                                  y="value_sl", limit="limit", step_confidence="step_level",
-                                  min_drop="min_drop", family_params=family_params,
-                                  return_points=True)
+    def fit(rows: np.ndarray) -> tuple[pd.DataFrame, pd.DataFrame]:
+        fits, steps = fleetfit.fit_fleet(
+            pts.loc[rows, _FIT_COLUMNS], series="series", group="group", x="hours",
+            y="value_sl", limit="limit", step_confidence="step_level", min_drop="min_drop",
+            family_params=family_params, return_points=True)
+        return fits, steps[_STEP_COLUMNS]
 
-    groups = fit_in["group"].to_numpy()
-    keys = np.unique(groups)
-    if len(fit_in) < FIT_BY_GROUP_ROWS or len(keys) < 2:
-        return fit(fit_in)
-    parts = [fit(fit_in[groups == key]) for key in keys]
+    groups = pts["group"].to_numpy()
+    keys = np.unique(groups[in_fit])
+    if in_fit.sum() < FIT_BY_GROUP_ROWS or len(keys) < 2:
+        return fit(in_fit)
+    parts = [fit(in_fit & (groups == key)) for key in keys]
     fits = pd.concat([f for f, _ in parts]).sort_index()
-    steps = pd.concat([p for _, p in parts]).reindex(fit_in.index)
+    steps = pd.concat([p for _, p in parts]).reindex(pts.index[in_fit])
     return fits, steps
 
 
@@ -251,15 +258,14 @@ def assess(fr: Frames, as_of: pd.Timestamp, *, horizon_weeks: int = HORIZON_WEEK
     """
     res = _check(fr, all_findings)
     pts = _series_points(fr, res, as_of)
-    fit_in = pts.loc[pts["in_fit"].to_numpy(), ["series", "group", "hours", "value_sl", "limit",
-                                                 "step_level", "min_drop"]]
-    fits, steps = _fit_by_group(fit_in, family_params)
+    in_fit = pts["in_fit"].to_numpy(dtype=bool)
+    fits, steps = _fit_by_group(pts, in_fit, family_params)
     pts["step"] = False
     pts["expected"] = np.nan
     pts["lower_bound"] = np.nan
-    pts.loc[fit_in.index, "step"] = steps["step"].to_numpy()
-    pts.loc[fit_in.index, "expected"] = steps["expected"].to_numpy()
-    pts.loc[fit_in.index, "lower_bound"] = steps["lower_bound"].to_numpy()
+    pts.loc[in_fit, "step"] = steps["step"].to_numpy()
+    pts.loc[in_fit, "expected"] = steps["expected"].to_numpy()
+    pts.loc[in_fit, "lower_bound"] = steps["lower_bound"].to_numpy()
     keys = fits.index.to_numpy(dtype=np.int64)
     fits = fits.assign(unit_id=keys // SERIES_STRIDE, cylinder=(keys % SERIES_STRIDE) // 1000,
                        event_seg=keys % 1000)
