@@ -263,9 +263,10 @@ def assess(fr: Frames, as_of: pd.Timestamp, *, horizon_weeks: int = HORIZON_WEEK
     pts["step"] = False
     pts["expected"] = np.nan
     pts["lower_bound"] = np.nan
-    pts.loc[in_fit, "step"] = steps["step"].to_numpy()
-    pts.loc[in_fit, "expected"] = steps["expected"].to_numpy()
-    pts.loc[in_fit, "lower_bound"] = steps["lower_bound"].to_numpy()
+    if in_fit.any():
+        pts.loc[in_fit, "step"] = steps["step"].to_numpy()
+        pts.loc[in_fit, "expected"] = steps["expected"].to_numpy()
+        pts.loc[in_fit, "lower_bound"] = steps["lower_bound"].to_numpy()
     keys = fits.index.to_numpy(dtype=np.int64)
     fits = fits.assign(unit_id=keys // SERIES_STRIDE, cylinder=(keys % SERIES_STRIDE) // 1000,
                        event_seg=keys % 1000)
