@@ -8,6 +8,7 @@ import io
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from fleetdb.errors import InvalidInput, Problem
@@ -105,6 +106,10 @@ def parse_csv_bytes(raw: bytes, name: str) -> CsvFile:
         raise InvalidInput([Problem(name, None, None, "holds NUL bytes: not a CSV text file")])
     if not raw.strip() or raw.strip() == b"\xef\xbb\xbf":
         raise InvalidInput([Problem(name, None, None, "file is empty")])
+    frame = _parse_plain(raw)
+    if frame is not None:
+        kind = detect_kind(list(frame.columns), name)
+        return CsvFile(name=name, kind=kind, frame=frame, sha256=digest)
     try:
         frame = pd.read_csv(io.BytesIO(raw), dtype=str, keep_default_na=False,
                             skipinitialspace=True, skip_blank_lines=False, engine="c",
@@ -129,6 +134,90 @@ def parse_csv_bytes(raw: bytes, name: str) -> CsvFile:
     if blank.any():
         frame = frame[~blank]
     return CsvFile(name=name, kind=kind, frame=frame, sha256=digest)
+
+
+_BOM = b"\xef\xbb\xbf"
+
+
+def _parse_plain(raw: bytes) -> pd.DataFrame | None:
+    """Parse a plain file with pyarrow's multi-threaded reader; None when it is not plain.
+
+    Plain: no quote character, no lone carriage return, a header of distinct non-blank names,
+    and every non-blank line holding exactly the header's number of cells. Such a file has
+    one record per line, so the cells and line numbers come out exactly as the pandas reader
+    gives them (leading spaces skipped, a column with a trailing space or tab stripped, blank
+    lines dropped but counted). Anything else goes to the pandas reader and its messages.
+    """
+    try:
+        import pyarrow as pa
+        import pyarrow.compute as pc
+        import pyarrow.csv as pacsv
+    except ImportError:  # pragma: no cover - pyarrow is a dependency of pandas 3 here
+        return None
+    if b'"' in raw or raw.count(b"\r") != raw.count(b"\r\n"):
+        return None
+    start = len(_BOM) if raw.startswith(_BOM) else 0
+    end = raw.find(b"\n", start)
+    header_end = len(raw) if end < 0 else end
+    names = raw[start:header_end].decode("utf-8").removesuffix("\r").split(",")
+    cleaned = [n.strip().lower() for n in names]
+    if len(set(names)) != len(names) or len(set(cleaned)) != len(cleaned) or "" in cleaned:
+        return None
+    body = memoryview(raw)[header_end + 1:] if end >= 0 else memoryview(b"")
+    try:
+        table = pacsv.read_csv(
+            pa.BufferReader(pa.py_buffer(body)),
+            read_options=pacsv.ReadOptions(column_names=names, use_threads=True),
+            parse_options=pacsv.ParseOptions(quote_char=False, ignore_empty_lines=True,
+                                              newlines_in_values=False),
+            convert_options=pacsv.ConvertOptions(
+                column_types=dict.fromkeys(names, pa.string()), null_values=[],
+                strings_can_be_null=False, quoted_strings_can_be_null=False))
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+        return None
+    lines = _data_line_numbers(body, table.num_rows, first=2)
+    if lines is None:
+        return None
+    columns = {}
+    for name, cells in zip(cleaned, table.columns, strict=True):
+        if pc.any(pc.starts_with(cells, " ")).as_py():
+            cells = pc.utf8_ltrim(cells, characters=" ")
+        values = pd.Series(cells.to_pandas(), copy=False)
+        if values.str.endswith((" ", "\t")).any():
+            values = values.str.strip()
+        columns[name] = values
+    del table
+    frame = pd.DataFrame(columns, copy=False)
+    frame.index = lines
+    first = frame.iloc[:, 0]
+    maybe_blank = first == ""
+    if maybe_blank.any():
+        blank = maybe_blank.copy()
+        blank[maybe_blank] = (frame[maybe_blank] == "").all(axis=1)
+        if blank.any():
+            frame = frame[~blank]
+    return frame
+
+
+def _data_line_numbers(body: memoryview, records: int, first: int) -> pd.Index | None:
+    """The line number of each non-blank line of ``body`` (which starts on line ``first``).
+
+    None when their count is not ``records`` (then lines and records do not match).
+    """
+    data = np.frombuffer(body, dtype=np.uint8)
+    ends = np.flatnonzero(data == ord("\n"))
+    n_lines = len(ends) + (1 if len(data) and data[-1] != ord("\n") else 0)
+    if n_lines == records:
+        return pd.RangeIndex(first, first + records)
+    starts = np.concatenate(([0], ends + 1))[:n_lines]
+    stops = np.append(ends, len(data))[:n_lines]
+    width = stops - starts
+    last = data[np.maximum(stops - 1, 0)] if len(data) else np.zeros(0, dtype=np.uint8)
+    blank = (width == 0) | ((width == 1) & (last == ord("\r")))
+    numbers = np.flatnonzero(~blank) + first
+    if len(numbers) != records:
+        return None
+    return pd.Index(numbers)
 
 
 def _first_long_line(raw: bytes, columns: int) -> int | None:

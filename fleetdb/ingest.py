@@ -302,27 +302,42 @@ def _import_tests(conn: Connection, csv: CsvFile, report: ImportReport, *, batch
     units = unit_refs(conn)
     now = pd.Timestamp.now() + pd.Timedelta(days=1)
     rows = validate.tests_rows(csv.frame, units, problems, now)
+    del units
     raise_if(problems)
 
     key = ["unit_id", "tested_at", "hours"]
     conds = list(validate.CONDITION_RANGES) + ["throttle_open", "technician", "note"]
-    validate.group_conflicts(rows, key, conds, problems, "test")
-    dup = rows.duplicated(key + ["kind", "cylinder"], keep="first")
+    # Group number of each line, numbered in order of first appearance (as ngroup with
+    # sort=False); no key is blank once tests_rows has passed.
+    gid = rows.groupby(key, sort=False).ngroup().to_numpy()
+    n_groups = int(gid.max()) + 1 if len(gid) else 0
+    firsts = validate.group_conflicts(rows, key, conds, problems, "test", gid=gid)
+    kind_code = pd.factorize(rows["kind"])[0]
+    cylinder = rows["cylinder"].to_numpy(dtype=np.int64, na_value=0)
+    dup = pd.Series(pd.DataFrame({"g": gid, "k": kind_code, "c": cylinder}).duplicated(
+        keep="first").to_numpy(), index=rows.index)
     problems.add(dup, "cylinder", lambda line: f"a second {rows['kind'][line]} reading for the "
                  "same cylinder of the same test")
     # Vacuum may not exceed the ambient pressure where it was taken.
-    baro = rows["baro_kpa"].fillna(units.reindex(rows["fleet_no"])["site_baro_kpa"]
-                                   .set_axis(rows.index))
+    baro = rows["baro_kpa"].fillna(rows["site_baro_kpa"])
     over = rows["kind"].isin(("vacuum_cranking", "vacuum_idle")) & (rows["value_si"] > baro)
     problems.add(over, "value", lambda line: f"{csv.frame['value'][line]} "
                  f"{csv.frame['units'][line]} of vacuum is more than the ambient pressure "
                  f"({baro[line]:.1f} kPa)")
     raise_if(problems)
+    del over, dup, kind_code, cylinder
 
-    rows["gid"] = rows.groupby(key, sort=False).ngroup()
-    tests = rows.groupby("gid", sort=True).agg(
-        {**{c: "first" for c in key}, **{c: "first" for c in conds}, "fleet_no": "first"})
-    tests["line"] = rows.reset_index(names="line").groupby("gid")["line"].first()
+    # One row per test: its key from its first line, each condition from the first line
+    # that gives it.
+    first_line = np.flatnonzero(~pd.Series(gid).duplicated().to_numpy())
+    tests = pd.DataFrame({c: rows[c].to_numpy()[first_line] for c in key})
+    tests["tested_at"] = tests["tested_at"].astype("datetime64[us]")
+    for c in conds:
+        tests[c] = firsts[c].reindex(pd.RangeIndex(n_groups)).to_numpy() if len(firsts[c]) \
+            else rows[c].iloc[:0].reindex(pd.RangeIndex(n_groups)).to_numpy()
+    tests["fleet_no"] = rows["fleet_no"].to_numpy()[first_line]
+    tests["line"] = rows.index.to_numpy()[first_line]
+    del firsts
 
     existing = pd.DataFrame(conn.execute(text(
         "SELECT unit_id, tested_at, hours FROM test")).all(), columns=key)
@@ -332,32 +347,89 @@ def _import_tests(conn: Connection, csv: CsvFile, report: ImportReport, *, batch
 
     merged = tests.merge(existing.assign(present=True), on=key, how="left")
     is_present = merged["present"].fillna(False).to_numpy(dtype=bool)
-    new_tests = tests[~is_present]
+    del merged, existing
     report.present = int(is_present.sum())
     report.unit_ids = sorted(int(u) for u in tests["unit_id"].unique())
-    n = len(new_tests)
+    n = int((~is_present).sum())
     ids = _allocate_ids(conn, "test", n)
-    id_of_gid = pd.Series(ids, index=new_tests.index)
+    # The test id of every line (-1: the test is already in the store), and the lines to
+    # write in test order, so tests and their readings go in together, chunk by chunk.
+    test_id_of_gid = np.full(n_groups, -1, dtype=np.int64)
+    test_id_of_gid[~is_present] = ids
+    test_id = test_id_of_gid[gid]
+    order = np.flatnonzero(test_id >= 0)
+    if len(order) and np.any(np.diff(test_id[order]) < 0):
+        order = order[np.argsort(test_id[order], kind="stable")]
+    readings = pd.DataFrame({
+        "test_id": test_id[order],
+        "kind": rows["kind"].to_numpy(dtype=object)[order],
+        "cylinder": rows["cylinder"].to_numpy(dtype=object, na_value=None)[order],
+        "value_si": rows["value_si"].to_numpy(dtype=float)[order],
+        "typed_value": rows["typed_value"].to_numpy(dtype=object)[order],
+        "typed_unit": rows["typed_unit"].to_numpy(dtype=object)[order]})
+    rows = baro = None  # freed: the lines are in `readings` now
+    del gid, test_id, order
+    csv.frame = csv.frame.iloc[:0]  # the text is no longer needed: free it before writing
+    new_tests = tests[~is_present]
+    del tests
     at = stamp(conn)
-    bulk_insert_columns(
-        conn, "test", ["id", "unit_id", "tested_at", "hours", *conds, "source", "batch_id",
-                       "created_at", "created_by"],
-        [np.asarray(ids, dtype=np.int64), new_tests["unit_id"].to_numpy(dtype=np.int64),
-         _db_time(conn, new_tests["tested_at"]), new_tests["hours"].to_numpy(dtype=float),
-         *(new_tests[c] for c in conds), source, batch_id, at, by])
-    if n != len(tests):
-        rows = rows[rows["gid"].isin(new_tests.index)]
-    readings_written = bulk_insert_columns(
-        conn, "reading", ["test_id", "kind", "cylinder", "value_si", "typed_value",
-                          "typed_unit"],
-        [id_of_gid.reindex(rows["gid"]).to_numpy(dtype=np.int64), rows["kind"],
-         rows["cylinder"], rows["value_si"].to_numpy(dtype=float), rows["typed_value"],
-         rows["typed_unit"]], progress)
+    test_columns = [np.asarray(ids, dtype=np.int64),
+                    new_tests["unit_id"].to_numpy(dtype=np.int64),
+                    _db_time(conn, new_tests["tested_at"]),
+                    new_tests["hours"].to_numpy(dtype=float),
+                    *(new_tests[c] for c in conds), source, batch_id, at, by]
+    readings_written = _write_tests_and_readings(
+        conn, ["id", "unit_id", "tested_at", "hours", *conds, "source", "batch_id",
+               "created_at", "created_by"], test_columns, readings, progress)
     if conn.dialect.name == "postgresql" and n:
         conn.execute(text("SELECT setval(pg_get_serial_sequence('test', 'id'), "
                           "(SELECT MAX(id) FROM test))"))
     report.written = {"tests": n, "readings": readings_written}
     report.test_ids = ids
+
+
+def _write_tests_and_readings(conn: Connection, test_names: list[str], test_columns: list,
+                              readings: pd.DataFrame, progress: Progress | None) -> int:
+    """Write tests and their readings together, a chunk of tests then their readings.
+
+    The readings' foreign-key look-ups then find their tests in pages just written (as the
+    floor does), instead of in a table written whole before them.
+
+    :param test_columns: columns of the tests in id order (see :func:`bulk_insert_columns`).
+    :param readings: test_id (ascending), kind, cylinder, value_si, typed_value, typed_unit.
+    :returns: readings written.
+    """
+    ids = test_columns[0]
+    reading_test = readings["test_id"].to_numpy()
+    total = len(readings)
+    names = list(readings.columns)
+    done = test_start = 0
+    while test_start < len(ids) or done < total:
+        # Enough tests for about CHUNK readings (always at least one test).
+        stop_reading = min(done + CHUNK, total)
+        if stop_reading < total:
+            last_test = reading_test[stop_reading - 1]
+            stop_reading = int(np.searchsorted(reading_test, last_test, side="right"))
+        test_stop = (len(ids) if stop_reading >= total
+                     else max(int(np.searchsorted(ids, reading_test[stop_reading])),
+                              test_start + 1))
+        bulk_insert_columns(conn, "test", test_names,
+                            [_slice(c, test_start, test_stop) for c in test_columns])
+        chunk = readings.iloc[done:stop_reading]
+        bulk_insert_columns(conn, "reading", names, [chunk[c] for c in names])
+        done, test_start = stop_reading, test_stop
+        if progress and total:
+            progress(done, total)
+    return total
+
+
+def _slice(column: object, start: int, stop: int) -> object:
+    """Rows ``start:stop`` of a column, or the scalar that fills every row."""
+    if not hasattr(column, "__len__") or isinstance(column, str):
+        return column
+    if isinstance(column, pd.Series):
+        return column.iloc[start:stop]
+    return column[start:stop]  # type: ignore[index]
 
 
 def _allocate_ids(conn: Connection, table: str, n: int) -> list[int]:

@@ -126,13 +126,20 @@ def number(frame: pd.DataFrame, col: str, problems: Problems, *, required: bool,
 
 
 def _to_float(text: pd.Series, blank: pd.Series) -> pd.Series:
-    """Text to floats, NaN where blank or not a number; through Arrow's cast when it can."""
+    """Text to floats, NaN where blank or not a number; through Arrow's cast when it can.
+
+    Arrow-backed text (what the CSV reader gives) goes to the cast without Python objects.
+    """
     try:
         import pyarrow as pa
         import pyarrow.compute as pc
 
-        arr = pa.array(text.where(~blank, None).to_numpy(dtype=object, na_value=None),
-                       type=pa.string())
+        arr = pa.array(text.array if isinstance(text.dtype, pd.StringDtype) else
+                       text.to_numpy(dtype=object, na_value=None))
+        if not pa.types.is_string(arr.type) and not pa.types.is_large_string(arr.type):
+            arr = arr.cast(pa.string())
+        arr = pc.if_else(pa.array(blank.to_numpy(dtype=bool, na_value=True)),
+                         pa.scalar(None, arr.type), arr)
         return pd.Series(pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False),
                          index=text.index, dtype=float)
     except (ImportError, ValueError, TypeError, ArithmeticError, KeyError):
@@ -189,13 +196,17 @@ def yes_no(frame: pd.DataFrame, col: str, problems: Problems) -> pd.Series:
     return out
 
 
-def _unit(frame: pd.DataFrame, problems: Problems) -> pd.Series:
+def _unit(frame: pd.DataFrame, problems: Problems) -> tuple[pd.Series, np.ndarray]:
+    """The canonical unit of each line (NaN when unknown) and its factor to kPa (1 for %)."""
     text = frame["units"]
-    canon = text.str.lower().map(_ALIASES)
+    codes, typed = pd.factorize(text)  # a handful of distinct spellings: map those once
+    canon_of = pd.Series(typed, dtype=object).str.lower().map(_ALIASES)
+    factor_of = canon_of.map({**KPA_PER_UNIT, "%": 1.0}).to_numpy(dtype=float, na_value=np.nan)
+    canon = pd.Series(canon_of.to_numpy(dtype=object)[codes], index=text.index, dtype=object)
     bad = canon.isna()
     problems.add(bad, "units", lambda line: f"unknown unit {text[line]!r}; expected one of "
                                             "psi, kPa, bar, inHg, mmHg, %")
-    return canon
+    return canon, factor_of[codes]
 
 
 def tests_rows(frame: pd.DataFrame, units: pd.DataFrame, problems: Problems,
@@ -206,29 +217,34 @@ def tests_rows(frame: pd.DataFrame, units: pd.DataFrame, problems: Problems,
     :param units: known units, index fleet_no, columns unit_id, cylinders, elevation_baro_kpa.
     :param problems: where problems go.
     :param now: the present; later test times are refused.
-    :returns: one typed row per input line: fleet_no, unit_id, tested_at, hours, kind,
-        cylinder, value_si, typed_value, typed_unit and the condition columns.
+    :returns: one typed row per input line: fleet_no, unit_id, site_baro_kpa, tested_at,
+        hours, kind, cylinder, value_si, typed_value, typed_unit and the condition columns.
     """
     out = pd.DataFrame(index=frame.index)
     fleet_no = frame["fleet_no"]
     problems.add(fleet_no == "", "fleet_no", "blank; expected the unit's fleet number")
-    known = fleet_no.isin(units.index)
+    # Each distinct fleet number is looked up once, then spread to its lines by code.
+    codes, distinct = pd.factorize(fleet_no)
+    ref_of = units.reindex(distinct)
+    known = pd.Series(distinct.isin(units.index)[codes], index=frame.index)
     problems.add((fleet_no != "") & ~known, "fleet_no",
                  lambda line: f"unknown fleet number {fleet_no[line]!r}; import the fleet "
                               "file first, or check the number")
     out["fleet_no"] = fleet_no
-    ref = units.reindex(fleet_no)
+    ref = pd.DataFrame({c: ref_of[c].to_numpy()[codes]
+                        for c in ("unit_id", "cylinders", "site_baro_kpa")}, index=frame.index)
     out["unit_id"] = ref["unit_id"].to_numpy()
+    out["site_baro_kpa"] = ref["site_baro_kpa"].to_numpy(dtype=float)
     out["tested_at"] = timestamp(frame, "tested_at", problems, required=True, latest=now)
     out["hours"] = number(frame, "hours", problems, required=True, lo=0, hi=1_000_000,
                           what="engine hours")
     kind = choice(frame, "kind", READING_KINDS, problems)
     out["kind"] = kind
-    unit = _unit(frame, problems)
+    unit, factor_values = _unit(frame, problems)
 
     # Cylinder: required for per-cylinder kinds, blank for the engine-level vacuums.
     cyl_text = frame["cylinder"]
-    cyl_num = pd.to_numeric(cyl_text.where(cyl_text != "", None), errors="coerce")
+    cyl_num = _to_float(cyl_text, cyl_text == "")
     per_cyl = kind.isin(CYLINDER_KINDS)
     is_vac = kind.isin(VACUUM_KINDS)
     not_int = (cyl_text != "") & (cyl_num.isna() | ~np.isfinite(cyl_num.fillna(0.0))
@@ -238,7 +254,7 @@ def tests_rows(frame: pd.DataFrame, units: pd.DataFrame, problems: Problems,
                  lambda line: f"blank; a {kind[line]} reading needs its cylinder number")
     problems.add(is_vac & (cyl_text != ""), "cylinder",
                  "vacuum is measured for the whole engine: leave the cylinder blank")
-    count = ref["cylinders"].to_numpy()
+    count = ref["cylinders"].to_numpy(dtype=float, na_value=np.nan)
     beyond = (per_cyl & ~not_int & cyl_num.notna() & known
               & ((cyl_num < 1) | (cyl_num > count)))
     problems.add(beyond, "cylinder",
@@ -256,9 +272,7 @@ def tests_rows(frame: pd.DataFrame, units: pd.DataFrame, problems: Problems,
                               f"use {', '.join(PRESSURE_UNITS_BY_KIND[kind[line]])}")
 
     value = number(frame, "value", problems, required=True, what="a measured value")
-    factor = unit.map(KPA_PER_UNIT).astype(float)
-    factor[unit == "%"] = 1.0
-    si = value * factor
+    si = value * factor_values
     negative = si < 0
     problems.add(negative, "value", lambda line: f"{frame['value'][line]} is negative; gauges "
                  "read compression above ambient and vacuum below it as positive numbers")
@@ -304,27 +318,46 @@ def _unit_fits(kind: pd.Series, unit: pd.Series) -> np.ndarray:
 
 
 def group_conflicts(rows: pd.DataFrame, key: list[str], cols: list[str],
-                    problems: Problems, what: str) -> None:
+                    problems: Problems, what: str,
+                    gid: np.ndarray | None = None) -> dict[str, pd.Series]:
     """Flag lines of one group (e.g. one test) that disagree on a column that the group shares.
 
     :param rows: typed rows, index = line number.
     :param key: the columns that form a group.
     :param cols: columns every row of a group must agree on (blank agrees with anything).
     :param what: the group's name in the message ("test", "site").
+    :param gid: the group number of each row, when the caller has it already (numbered
+        0, 1, ... in order of first appearance, as ``groupby(sort=False).ngroup()``).
+    :returns: per column, each group's first present value (index = group number; a
+        group with none present is missing).
     """
     if rows.empty:
-        return
-    gid = rows.groupby(key, sort=False, dropna=False).ngroup()
+        return {}
+    if gid is None:
+        gid = rows.groupby(key, sort=False, dropna=False).ngroup().to_numpy()
+    firsts_of: dict[str, pd.Series] = {}
     for col in cols:
         values = rows[col]
-        present = values.notna()
+        present = values.notna().to_numpy()
         if not present.any():
+            firsts_of[col] = values.iloc[:0].reset_index(drop=True)
             continue
-        firsts = values[present].groupby(gid[present]).transform("first")
-        differs = pd.Series(False, index=rows.index)
-        differs[present] = values[present].astype(str) != firsts.astype(str)
-        problems.add(differs, col, lambda line, c=col: f"differs from an earlier line of the "
+        kept = values[present]
+        groups = gid[present]
+        distinct, first_at = np.unique(groups, return_index=True)  # first row of each group
+        firsts = kept.iloc[first_at].set_axis(distinct)
+        firsts_of[col] = firsts
+        spread = firsts.reindex(groups).to_numpy()
+        mine = kept.to_numpy()
+        differs_kept = mine != spread
+        if mine.dtype.kind == "f":  # -0.0 and 0.0 are typed differently
+            differs_kept |= np.signbit(mine) != np.signbit(spread)
+        differs = np.zeros(len(rows), dtype=bool)
+        differs[present] = np.asarray(differs_kept, dtype=bool)
+        problems.add(pd.Series(differs, index=rows.index), col,
+                     lambda line, c=col: f"differs from an earlier line of the "
                      f"same {what} ({rows[c][line]} vs another value); one {what}, one value")
+    return firsts_of
 
 
 def event_rows(frame: pd.DataFrame, units: pd.DataFrame, problems: Problems,
