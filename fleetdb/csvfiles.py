@@ -104,7 +104,7 @@ def parse_csv_bytes(raw: bytes, name: str) -> CsvFile:
             "not UTF-8 text; save the sheet as 'CSV UTF-8'")]) from exc
     if b"\x00" in raw:
         raise InvalidInput([Problem(name, None, None, "holds NUL bytes: not a CSV text file")])
-    if not raw.strip() or raw.strip() == b"\xef\xbb\xbf":
+    if _is_blank(raw):
         raise InvalidInput([Problem(name, None, None, "file is empty")])
     frame = _parse_plain(raw)
     if frame is not None:
@@ -137,6 +137,14 @@ def parse_csv_bytes(raw: bytes, name: str) -> CsvFile:
 
 
 _BOM = b"\xef\xbb\xbf"
+
+
+def _is_blank(raw: bytes) -> bool:
+    """Whether the file holds nothing but white space (and perhaps a byte-order mark)."""
+    if len(raw) > 4096 and raw[:4096].strip().removeprefix(_BOM).strip() != b"":
+        return False  # a large file with text at its start: no need to copy it whole
+    stripped = raw.strip()
+    return not stripped or stripped == _BOM
 
 
 def _parse_plain(raw: bytes) -> pd.DataFrame | None:
@@ -178,15 +186,18 @@ def _parse_plain(raw: bytes) -> pd.DataFrame | None:
     lines = _data_line_numbers(body, table.num_rows, first=2)
     if lines is None:
         return None
+    cells_of = table.columns
+    del table  # each column's parsed cells are freed once converted
     columns = {}
-    for name, cells in zip(cleaned, table.columns, strict=True):
+    for name in cleaned:
+        cells = cells_of.pop(0)
         if pc.any(pc.starts_with(cells, " ")).as_py():
             cells = pc.utf8_ltrim(cells, characters=" ")
         values = pd.Series(cells.to_pandas(), copy=False)
+        del cells
         if values.str.endswith((" ", "\t")).any():
             values = values.str.strip()
         columns[name] = values
-    del table
     frame = pd.DataFrame(columns, copy=False)
     frame.index = lines
     first = frame.iloc[:, 0]

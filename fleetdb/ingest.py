@@ -301,8 +301,13 @@ def _import_tests(conn: Connection, csv: CsvFile, report: ImportReport, *, batch
     problems = validate.Problems(csv.name)
     units = unit_refs(conn)
     now = pd.Timestamp.now() + pd.Timedelta(days=1)
-    rows = validate.tests_rows(csv.frame, units, problems, now)
-    del units
+    # The text of the columns that messages quote later stays with the file; the rest is
+    # handed to tests_rows, which frees each column once converted.
+    text_frame = csv.frame
+    csv.frame = text_frame[["value", "units"]]
+    rows = validate.tests_rows(text_frame, units, problems, now, consume=True)
+    del units, text_frame
+    _release_arrow_memory()
     raise_if(problems)
 
     key = ["unit_id", "tested_at", "hours"]
@@ -312,10 +317,13 @@ def _import_tests(conn: Connection, csv: CsvFile, report: ImportReport, *, batch
     gid = rows.groupby(key, sort=False).ngroup().to_numpy()
     n_groups = int(gid.max()) + 1 if len(gid) else 0
     firsts = validate.group_conflicts(rows, key, conds, problems, "test", gid=gid)
-    kind_code = pd.factorize(rows["kind"])[0]
+    # One integer per (test, kind, cylinder): cylinders are within the engine's count here.
+    kind_code = pd.factorize(rows["kind"])[0].astype(np.int64)
     cylinder = rows["cylinder"].to_numpy(dtype=np.int64, na_value=0)
-    dup = pd.Series(pd.DataFrame({"g": gid, "k": kind_code, "c": cylinder}).duplicated(
-        keep="first").to_numpy(), index=rows.index)
+    reading_key = (gid * (int(kind_code.max(initial=0)) + 1) + kind_code) \
+        * (int(cylinder.max(initial=0)) + 1) + cylinder
+    dup = pd.Series(pd.Series(reading_key).duplicated(keep="first").to_numpy(),
+                    index=rows.index)
     problems.add(dup, "cylinder", lambda line: f"a second {rows['kind'][line]} reading for the "
                  "same cylinder of the same test")
     # Vacuum may not exceed the ambient pressure where it was taken.
@@ -325,7 +333,7 @@ def _import_tests(conn: Connection, csv: CsvFile, report: ImportReport, *, batch
                  f"{csv.frame['units'][line]} of vacuum is more than the ambient pressure "
                  f"({baro[line]:.1f} kPa)")
     raise_if(problems)
-    del over, dup, kind_code, cylinder
+    del over, dup, kind_code, cylinder, reading_key
 
     # One row per test: its key from its first line, each condition from the first line
     # that gives it.
@@ -360,16 +368,17 @@ def _import_tests(conn: Connection, csv: CsvFile, report: ImportReport, *, batch
     order = np.flatnonzero(test_id >= 0)
     if len(order) and np.any(np.diff(test_id[order]) < 0):
         order = order[np.argsort(test_id[order], kind="stable")]
+    # Columns stay in their compact form (the typed text in Arrow); each chunk becomes
+    # Python values only when it is written.
+    in_order = len(order) == len(rows) and not np.any(np.diff(order) != 1)
     readings = pd.DataFrame({
         "test_id": test_id[order],
-        "kind": rows["kind"].to_numpy(dtype=object)[order],
-        "cylinder": rows["cylinder"].to_numpy(dtype=object, na_value=None)[order],
-        "value_si": rows["value_si"].to_numpy(dtype=float)[order],
-        "typed_value": rows["typed_value"].to_numpy(dtype=object)[order],
-        "typed_unit": rows["typed_unit"].to_numpy(dtype=object)[order]})
+        **{c: (rows[c] if in_order else rows[c].iloc[order]).reset_index(drop=True)
+           for c in ("kind", "cylinder", "value_si", "typed_value", "typed_unit")}})
     rows = baro = None  # freed: the lines are in `readings` now
     del gid, test_id, order
     csv.frame = csv.frame.iloc[:0]  # the text is no longer needed: free it before writing
+    _release_arrow_memory()
     new_tests = tests[~is_present]
     del tests
     at = stamp(conn)
@@ -421,6 +430,15 @@ def _write_tests_and_readings(conn: Connection, test_names: list[str], test_colu
         if progress and total:
             progress(done, total)
     return total
+
+
+def _release_arrow_memory() -> None:
+    """Hand memory that Arrow freed back to the system (its pool keeps it otherwise)."""
+    try:
+        import pyarrow as pa
+    except ImportError:  # pragma: no cover - pandas 3 brings pyarrow here
+        return
+    pa.default_memory_pool().release_unused()
 
 
 def _slice(column: object, start: int, stop: int) -> object:

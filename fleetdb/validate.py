@@ -152,10 +152,14 @@ def timestamp(frame: pd.DataFrame, col: str, problems: Problems, *, required: bo
     """Parse ISO 8601 dates or date-times (``2025-03-01`` or ``2025-03-01 08:30``)."""
     text = frame[col] if col in frame else pd.Series("", index=frame.index)
     blank = text == ""
+    # Many lines share a time (the lines of one test): parse each distinct text once.
+    codes, distinct = pd.factorize(text, use_na_sentinel=False)
     # utc=True: times with an offset become UTC, the others stay as typed, and a file that
     # mixes both (or several offsets) parses instead of raising.
-    parsed = pd.to_datetime(text.where(~blank, None), format="ISO8601", errors="coerce",
-                            utc=True).dt.tz_convert(None)
+    distinct_text = pd.Series(distinct, dtype=object)
+    parsed_distinct = pd.to_datetime(distinct_text.where(distinct_text != "", None),
+                                     format="ISO8601", errors="coerce", utc=True)
+    parsed = pd.Series(parsed_distinct.dt.tz_convert(None).to_numpy()[codes], index=text.index)
     bad = ~blank & parsed.isna()
     problems.add(bad, col, lambda line: f"{text[line]!r} is not a date; write it as "
                                         "YYYY-MM-DD or YYYY-MM-DD HH:MM")
@@ -175,12 +179,19 @@ def timestamp(frame: pd.DataFrame, col: str, problems: Problems, *, required: bo
 
 def choice(frame: pd.DataFrame, col: str, allowed: tuple[str, ...],
            problems: Problems) -> pd.Series:
-    """A lower-cased text column whose every value must be one of ``allowed``."""
-    text = frame[col].str.lower()
-    bad = ~text.isin(allowed)
+    """A lower-cased text column whose every value must be one of ``allowed``.
+
+    :returns: the lower-cased values (Python strings), NaN where not allowed.
+    """
+    # A handful of distinct values: check those, then spread to the lines by code.
+    codes, distinct = pd.factorize(frame[col], use_na_sentinel=False)
+    lower = pd.Series(distinct, dtype=object).str.lower()
+    fits = lower.isin(allowed).to_numpy()
+    bad = pd.Series(~fits[codes], index=frame.index)
     problems.add(bad, col, lambda line: f"{frame[col][line]!r} is not one of "
                                         f"{', '.join(allowed)}")
-    return text.where(~bad)
+    return pd.Series(lower.where(fits, np.nan).to_numpy(dtype=object)[codes],
+                     index=frame.index, dtype=object)
 
 
 def yes_no(frame: pd.DataFrame, col: str, problems: Problems) -> pd.Series:
@@ -199,7 +210,8 @@ def yes_no(frame: pd.DataFrame, col: str, problems: Problems) -> pd.Series:
 def _unit(frame: pd.DataFrame, problems: Problems) -> tuple[pd.Series, np.ndarray]:
     """The canonical unit of each line (NaN when unknown) and its factor to kPa (1 for %)."""
     text = frame["units"]
-    codes, typed = pd.factorize(text)  # a handful of distinct spellings: map those once
+    # A handful of distinct spellings: map those once.
+    codes, typed = pd.factorize(text, use_na_sentinel=False)
     canon_of = pd.Series(typed, dtype=object).str.lower().map(_ALIASES)
     factor_of = canon_of.map({**KPA_PER_UNIT, "%": 1.0}).to_numpy(dtype=float, na_value=np.nan)
     canon = pd.Series(canon_of.to_numpy(dtype=object)[codes], index=text.index, dtype=object)
@@ -210,10 +222,13 @@ def _unit(frame: pd.DataFrame, problems: Problems) -> tuple[pd.Series, np.ndarra
 
 
 def tests_rows(frame: pd.DataFrame, units: pd.DataFrame, problems: Problems,
-               now: pd.Timestamp) -> pd.DataFrame:
+               now: pd.Timestamp, *, consume: bool = False) -> pd.DataFrame:
     """Validate the rows of a tests file and convert each value to SI.
 
     :param frame: the tests file as text, index = line number.
+    :param consume: drop each text column from ``frame`` once it is converted (keeping
+        only ``value`` and ``units``), so a large file's text and typed rows do not both
+        stay whole in memory.
     :param units: known units, index fleet_no, columns unit_id, cylinders, elevation_baro_kpa.
     :param problems: where problems go.
     :param now: the present; later test times are refused.
@@ -224,7 +239,7 @@ def tests_rows(frame: pd.DataFrame, units: pd.DataFrame, problems: Problems,
     fleet_no = frame["fleet_no"]
     problems.add(fleet_no == "", "fleet_no", "blank; expected the unit's fleet number")
     # Each distinct fleet number is looked up once, then spread to its lines by code.
-    codes, distinct = pd.factorize(fleet_no)
+    codes, distinct = pd.factorize(fleet_no, use_na_sentinel=False)
     ref_of = units.reindex(distinct)
     known = pd.Series(distinct.isin(units.index)[codes], index=frame.index)
     problems.add((fleet_no != "") & ~known, "fleet_no",
@@ -238,6 +253,8 @@ def tests_rows(frame: pd.DataFrame, units: pd.DataFrame, problems: Problems,
     out["tested_at"] = timestamp(frame, "tested_at", problems, required=True, latest=now)
     out["hours"] = number(frame, "hours", problems, required=True, lo=0, hi=1_000_000,
                           what="engine hours")
+    if consume:
+        frame.drop(columns=["tested_at", "hours"], inplace=True)
     kind = choice(frame, "kind", READING_KINDS, problems)
     out["kind"] = kind
     unit, factor_values = _unit(frame, problems)
@@ -263,6 +280,9 @@ def tests_rows(frame: pd.DataFrame, units: pd.DataFrame, problems: Problems,
     # Only numbers within the engine's cylinders (an unknown unit has none) become integers.
     in_range = per_cyl & ~not_int & (cyl_num >= 1) & (cyl_num <= count)
     out["cylinder"] = cyl_num.where(in_range).astype("Int64")
+    if consume:
+        frame.drop(columns=["cylinder"], inplace=True)
+        cyl_text = None  # freed (the messages above are written already)
 
     # Unit must suit the kind.
     wrong_unit = kind.notna() & unit.notna() & ~pd.Series(_unit_fits(kind, unit),
@@ -291,7 +311,11 @@ def tests_rows(frame: pd.DataFrame, units: pd.DataFrame, problems: Problems,
 
     for col, (lo, hi, what) in CONDITION_RANGES.items():
         out[col] = number(frame, col, problems, required=False, lo=lo, hi=hi, what=what)
+        if consume and col in frame:
+            frame.drop(columns=[col], inplace=True)
     out["throttle_open"] = yes_no(frame, "throttle_open", problems)
+    if consume:
+        frame.drop(columns=[c for c in ("kind", "throttle_open") if c in frame], inplace=True)
     for col in ("technician", "note"):
         out[col] = frame[col].where(frame[col] != "", None) if col in frame else None
     for col, limit in (("value", _TYPED_VALUE_MAX), ("technician", _TECHNICIAN_MAX),
