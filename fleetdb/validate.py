@@ -254,7 +254,7 @@ def tests_rows(frame: pd.DataFrame, units: pd.DataFrame, problems: Problems,
     out["hours"] = number(frame, "hours", problems, required=True, lo=0, hi=1_000_000,
                           what="engine hours")
     if consume:
-        frame.drop(columns=["tested_at", "hours"], inplace=True)
+        del frame["tested_at"], frame["hours"]
     kind = choice(frame, "kind", READING_KINDS, problems)
     out["kind"] = kind
     unit, factor_values = _unit(frame, problems)
@@ -281,7 +281,7 @@ def tests_rows(frame: pd.DataFrame, units: pd.DataFrame, problems: Problems,
     in_range = per_cyl & ~not_int & (cyl_num >= 1) & (cyl_num <= count)
     out["cylinder"] = cyl_num.where(in_range).astype("Int64")
     if consume:
-        frame.drop(columns=["cylinder"], inplace=True)
+        del frame["cylinder"]
         cyl_text = None  # freed (the messages above are written already)
 
     # Unit must suit the kind.
@@ -312,10 +312,12 @@ def tests_rows(frame: pd.DataFrame, units: pd.DataFrame, problems: Problems,
     for col, (lo, hi, what) in CONDITION_RANGES.items():
         out[col] = number(frame, col, problems, required=False, lo=lo, hi=hi, what=what)
         if consume and col in frame:
-            frame.drop(columns=[col], inplace=True)
+            del frame[col]
     out["throttle_open"] = yes_no(frame, "throttle_open", problems)
     if consume:
-        frame.drop(columns=[c for c in ("kind", "throttle_open") if c in frame], inplace=True)
+        for col in ("kind", "throttle_open"):
+            if col in frame:
+                del frame[col]
     for col in ("technician", "note"):
         out[col] = frame[col].where(frame[col] != "", None) if col in frame else None
     for col, limit in (("value", _TYPED_VALUE_MAX), ("technician", _TECHNICIAN_MAX),
