@@ -2,13 +2,15 @@
 
 from __future__ import annotations
 
+import csv
+import io
 from pathlib import Path
 
 import pytest
 from sqlalchemy import text
 from sqlalchemy.engine import Engine
 
-from fleetdb import ingest, logbook
+from fleetdb import csvfiles, ingest, logbook
 from fleetdb.errors import FleetDBError, InvalidInput
 from fleetdb.units import KPA_PER_UNIT
 from tests.conftest import DATA, write
@@ -210,3 +212,29 @@ def test_log_and_void(fleet: Engine) -> None:
     with pytest.raises(FleetDBError, match="say why"):
         logbook.void_test(fleet, test_id, " ")
     assert counts(fleet)["test"] == 1  # voided, never deleted
+
+
+_PLAIN_HEAD = b"fleet_no,tested_at,hours,kind,cylinder,value,units\n"
+_PLAIN_ROW = b"T-101,2024-03-01,1200,compression,1,150,psi"
+
+
+@pytest.mark.parametrize("raw", [
+    _PLAIN_HEAD + (_PLAIN_ROW + b"\n") * 3,
+    b"\xef\xbb\xbf" + _PLAIN_HEAD + b"\n\n" + _PLAIN_ROW + b"\n\n\n" + _PLAIN_ROW + b"\n\n",
+    (_PLAIN_HEAD + _PLAIN_ROW + b"\n\n" + _PLAIN_ROW + b"\n").replace(b"\n", b"\r\n"),
+    _PLAIN_HEAD + b"T-101,  2024-03-01 , 1200,compression ,1,150,psi\t\n,,,,,,\n" + _PLAIN_ROW,
+], ids=["plain", "bom-and-blank-lines", "crlf-with-blank-line", "spaces-and-empty-row"])
+def test_plain_reader_cells_and_lines_match_the_csv_module(raw: bytes) -> None:
+    """The pyarrow reader of plain files against Python's csv module (the reference):
+    same cells (outer spaces stripped) and the same line number for every data row."""
+    assert csvfiles._parse_plain(raw) is not None  # the fast reader takes these files
+    parsed = csvfiles.parse_csv_bytes(raw, "plain.csv")
+    reader = csv.reader(io.StringIO(raw.decode("utf-8-sig"), newline=""),
+                        skipinitialspace=True)
+    next(reader)
+    expected: dict[int, list[str]] = {}
+    for record in reader:
+        if any(cell.strip() for cell in record):
+            expected[reader.line_num] = [cell.strip() for cell in record]
+    assert list(parsed.frame.index) == list(expected)
+    assert parsed.frame.to_numpy().tolist() == list(expected.values())
