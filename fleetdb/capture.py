@@ -204,6 +204,10 @@ class PressureResult:
     depression_by_cycle_kpa: np.ndarray = field(default_factory=lambda: np.empty(0))
     #: Cranking speed over each spacing between events i and i+1, rpm.
     rpm_by_cycle: np.ndarray = field(default_factory=lambda: np.empty(0))
+    #: Sample index of each event's highest sample (before the parabola).
+    peak_index: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=int))
+    #: The smoothed intake stroke of each cycle at 64 points (rows: cycles; gauge kPa).
+    intake_by_cycle_kpa: np.ndarray = field(default_factory=lambda: np.empty((0, 64)))
 
 
 def _refine_peaks(x: np.ndarray, idx: np.ndarray, half: int) -> tuple[np.ndarray, np.ndarray]:
@@ -262,9 +266,11 @@ def compression_events(time_s: np.ndarray, gauge_kpa: np.ndarray, rate_hz: float
     smooth = moving_average(x, max(1, int(round(30.0 / deg))))
     frac = np.linspace(0.5, 0.75, 64)
     pos = np.rint(peaks[:-1, None] + frac[None, :] * np.diff(peaks)[:, None]).astype(int)
-    depression = -float(np.min(np.median(smooth[pos], axis=0)))
+    intake = smooth[pos]
+    depression = -float(np.min(np.median(intake, axis=0)))
     return PressureResult(
-        depression_by_cycle_kpa=-np.min(smooth[pos], axis=1), rpm_by_cycle=120.0 / spacing,
+        peak_index=peaks, intake_by_cycle_kpa=intake,
+        depression_by_cycle_kpa=-np.min(intake, axis=1), rpm_by_cycle=120.0 / spacing,
         peak_times_s=times, peaks_kpa=heights, first_kpa=float(heights[0]),
         settled_kpa=settled, first_pct=float(100.0 * heights[0] / settled),
         events_to_90pct=int(reached[0]) + 1, crank_rpm=rpm,
@@ -328,6 +334,18 @@ def vacuum_summary(vacuum_kpa: np.ndarray, rate_hz: float, *, idle: bool,
     out = VacuumResult(mean_kpa=mean, pulsation_kpa=float(p95 - p5), idle=idle)
     lows, _ = find_peaks(-smooth, distance=max(1, int(0.6 * per_event)),
                          prominence=max(4.0 * noise_sd(smooth), 0.1 * (p95 - p5)))
+    return idle_dips(out, lows, smooth[lows], rate_hz, cylinders, firing)
+
+
+def idle_dips(out: VacuumResult, lows: np.ndarray, values: np.ndarray, rate_hz: float,
+              cylinders: int, firing: float) -> VacuumResult:
+    """Group the lows of the idle firing events by their place in the engine cycle and fill
+    in ``out``'s dip (see :func:`vacuum_summary`).
+
+    :param lows: sample index of each firing event's lowest (smoothed) vacuum, in order.
+    :param values: the smoothed vacuum there.
+    :param firing: the firing frequency found, Hz (kept when the lows are too few).
+    """
     if lows.size < 2 * cylinders + 1:
         out.firing_hz = firing
         return out
@@ -336,7 +354,6 @@ def vacuum_summary(vacuum_kpa: np.ndarray, rate_hz: float, *, idle: bool,
     step = float(np.median(gap))
     slot = np.concatenate([[0], np.cumsum(np.maximum(1, np.rint(gap / step)).astype(int))])
     place = slot % cylinders
-    values = smooth[lows]
     counts = np.bincount(place, minlength=cylinders)
     if counts.min() < 2:
         out.firing_hz = firing
@@ -369,18 +386,35 @@ class CurrentResult:
     humps_used: int = 0
 
 
-def _hump_grid(x: np.ndarray, rate_hz: float, cylinders: int) -> tuple[np.ndarray, float]:
+def hump_swing(x: np.ndarray) -> float:
+    """The current's 0.5-99.5 % range, A; refuses a channel too flat to hold humps."""
     swing = float(np.percentile(x, 99.5) - np.percentile(x, 0.5))
+    check_hump_swing(swing)
+    return swing
+
+
+def check_hump_swing(swing: float) -> None:
+    """:raises CaptureError: a swing too small to hold compression humps."""
     if swing < MIN_CURRENT_SWING_A:
         raise CaptureError(f"shows no compression humps: it swings only {swing:.1f} A. Is the "
                            "clamp on the starter cable, and its scale right?")
+
+
+def hump_candidates(x: np.ndarray, rate_hz: float, cylinders: int,
+                    swing: float) -> tuple[np.ndarray, np.ndarray]:
+    """Peaks of the current averaged over 1 ms: (sample index, prominence)."""
     distance = max(1, int(0.5 * 120.0 / (MAX_CRANK_RPM * cylinders) * rate_hz))
     smooth = moving_average(x, max(1, int(rate_hz * 0.001)))  # 1 ms
     found, props = find_peaks(smooth, distance=distance,
                               prominence=max(6.0 * noise_sd(smooth), 0.05 * swing))
+    return found, props["prominences"]
+
+
+def hump_grid(found: np.ndarray, prominences: np.ndarray,
+              cylinders: int) -> tuple[np.ndarray, float]:
+    """The regular grid of hump places (sample positions) and its step, in samples."""
     if found.size >= 3:
-        strong = props["prominences"] >= 0.2 * np.percentile(props["prominences"], 90)
-        found = found[strong]
+        found = found[prominences >= 0.2 * np.percentile(prominences, 90)]
     if found.size < 2 * cylinders:
         raise CaptureError(f"holds {found.size} compression hump(s); two engine cycles "
                            f"({2 * cylinders} humps on {cylinders} cylinders) are needed")
@@ -389,6 +423,33 @@ def _hump_grid(x: np.ndarray, rate_hz: float, cylinders: int) -> tuple[np.ndarra
     slot = np.concatenate([[0], np.cumsum(np.maximum(1, np.rint(gap / step)).astype(int))])
     grid = np.interp(np.arange(slot[-1] + 1), slot, found)
     return grid, step
+
+
+def hump_rpm(step: float, rate_hz: float, cylinders: int) -> float:
+    """Cranking speed from the hump step; :raises CaptureError: sample rate too low."""
+    rpm = 120.0 / (cylinders * step / rate_hz)
+    if rpm * 6.0 / rate_hz > MAX_DEG_PER_SAMPLE:
+        raise CaptureError(f"sample rate {rate_hz:.0f} Hz is too low for cranking at {rpm:.0f} "
+                           f"rpm: record at {rpm * 6.0 / MAX_DEG_PER_SAMPLE:.0f} Hz or more")
+    return rpm
+
+
+def hump_extremes(x: np.ndarray, grid: np.ndarray, step: float, size: int | None = None,
+                  first: int = 0) -> tuple[np.ndarray, np.ndarray]:
+    """Highest and lowest current within half a hump period of each grid place.
+
+    :param x: the current averaged over a twentieth of a hump period (samples ``first`` on).
+    :param grid: hump places, sample positions in the whole recording.
+    :param size: samples in the whole recording (default: ``first + x.size``).
+    :param first: the whole recording's index of ``x[0]``.
+    """
+    size = first + x.size if size is None else size
+    half = max(1, int(0.5 * step))
+    centre = np.rint(grid).astype(int)
+    lo = np.clip(centre - half, 0, size - 2)
+    hi = np.clip(centre + half, lo + 1, size - 1)
+    bounds = np.ravel(np.column_stack([lo, hi])) - first
+    return np.maximum.reduceat(x, bounds)[0::2], np.minimum.reduceat(x, bounds)[0::2]
 
 
 def current_humps(time_s: np.ndarray, amps: np.ndarray, rate_hz: float, cylinders: int,
@@ -414,26 +475,28 @@ def current_humps(time_s: np.ndarray, amps: np.ndarray, rate_hz: float, cylinder
     :raises CaptureError: too few humps, too low a sample rate, or a sync that does not fit.
     """
     x = np.asarray(amps, dtype=float)
-    grid, step = _hump_grid(x, rate_hz, cylinders)
-    rpm = 120.0 / (cylinders * step / rate_hz)
-    deg = rpm * 6.0 / rate_hz
-    if deg > MAX_DEG_PER_SAMPLE:
-        raise CaptureError(f"sample rate {rate_hz:.0f} Hz is too low for cranking at {rpm:.0f} "
-                           f"rpm: record at {rpm * 6.0 / MAX_DEG_PER_SAMPLE:.0f} Hz or more")
+    found, prominences = hump_candidates(x, rate_hz, cylinders, hump_swing(x))
+    grid, step = hump_grid(found, prominences, cylinders)
+    rpm = hump_rpm(step, rate_hz, cylinders)
     x = moving_average(x, max(1, int(step / 20)))
-    half = max(1, int(0.5 * step))
-    centre = np.rint(grid).astype(int)
-    lo = np.clip(centre - half, 0, x.size - 2)
-    hi = np.clip(centre + half, lo + 1, x.size - 1)
-    bounds = np.ravel(np.column_stack([lo, hi]))
-    top = np.maximum.reduceat(x, bounds)[0::2]
-    bottom = np.minimum.reduceat(x, bounds)[0::2]
+    top, bottom = hump_extremes(x, grid, step)
+    times = np.interp(grid, np.arange(x.size), time_s)
+    return assign_humps(times, top, bottom, step, rate_hz, rpm, cylinders, firing_order,
+                        sync_peak_times=sync_peak_times, sync_cylinder=sync_cylinder,
+                        first_hump=first_hump)
+
+
+def assign_humps(times: np.ndarray, top: np.ndarray, bottom: np.ndarray, step: float,
+                 rate_hz: float, rpm: float, cylinders: int, firing_order: tuple[int, ...], *,
+                 sync_peak_times: np.ndarray | None = None, sync_cylinder: int | None = None,
+                 first_hump: int | None = None) -> CurrentResult:
+    """The humps measured (time, top and bottom of each grid place) assigned to cylinders
+    (see :func:`current_humps`)."""
     heights = top - bottom
     # Inrush: windows whose floor stands well above the usual floor are left out.
     floor = np.median(bottom)
     spread = 1.4826 * np.median(np.abs(bottom - floor)) + 0.02 * float(np.median(heights))
     heights = np.where(bottom > floor + 4.0 * spread, np.nan, heights)
-    times = np.interp(grid, np.arange(x.size), time_s)
     if sync_peak_times is not None and sync_cylinder is not None:
         owner = np.searchsorted(times, np.asarray(sync_peak_times) + 0.15 * step / rate_hz) - 1
         owner = owner[owner >= 0]
@@ -454,7 +517,7 @@ def current_humps(time_s: np.ndarray, amps: np.ndarray, rate_hz: float, cylinder
     else:
         raise CaptureError("needs a sync reference: a pressure channel of a known cylinder, or "
                            "the cylinder of the first hump")
-    cyl = np.asarray(firing_order)[(first_pos + np.arange(grid.size)) % cylinders]
+    cyl = np.asarray(firing_order)[(first_pos + np.arange(times.size)) % cylinders]
     height: dict[int, float] = {}
     for c in firing_order:
         h = heights[(cyl == c) & ~np.isnan(heights)]

@@ -19,7 +19,7 @@ from __future__ import annotations
 import csv
 import hashlib
 import io
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
@@ -268,62 +268,101 @@ def read_capture(path: Path | str, time_column: str, columns: Sequence[str], *,
         uploaded through the dashboard rather than where the server keeps it.
     :raises InvalidInput: naming the file, line and column of the first problem.
     """
-    path = Path(path)
-    name = name or str(path)
-    header = _header(path, name)
-    dupes = sorted({h for h in header if header.count(h) > 1})
-    if dupes:
-        raise problem(name, dupes[0], "column appears twice in the header", 1)
-    wanted = [time_column, *columns]
-    missing = [c for c in wanted if c not in header]
-    if missing:
-        what = "time column" if missing[0] == time_column else "channel column"
-        hint = " (name it with --time-column)" if missing[0] == time_column else ""
-        raise problem(name, missing[0], f"{what} not in the file{hint}; its columns are "
-                       f"{', '.join(header)}", 1)
-    if time_unit not in TIME_UNITS:
-        raise InvalidValue(f"time unit {time_unit!r}: use s, ms or us")
-    positions = [header.index(c) for c in wanted]
-    parts: dict[str, list[np.ndarray]] = {c: [] for c in wanted}
-    reader = _CountingReader(path, progress)
-    rows = 0
-    try:
-        chunks = pd.read_csv(io.BufferedReader(reader, 1 << 20), usecols=positions, header=0,
-                             chunksize=chunk_rows, engine="c", skip_blank_lines=False,
-                             skipinitialspace=True, encoding="utf-8-sig")
-        for chunk in chunks:
-            chunk.columns = [str(c).strip() for c in chunk.columns]
-            for col in wanted:
-                parts[col].append(_numbers(chunk[col], name, col, rows))
-            rows += len(chunk)
-    except UnicodeDecodeError as exc:
-        raise problem(name, None, "not UTF-8 text past its header: export the capture as a "
-                      "plain CSV") from exc
-    except pd.errors.ParserError as exc:
-        raise problem(name, None, f"not a readable CSV: {exc}") from exc
-    finally:
-        reader.finish()
-    data = {}
-    for col in wanted:
-        data[col] = np.concatenate(parts.pop(col)) if rows else np.empty(0)
-    present = np.column_stack([~np.isnan(v) for v in data.values()])
-    blank = ~present.any(axis=1)
-    last = np.flatnonzero(~blank)
-    end = int(last[-1]) + 1 if last.size else 0
-    holes = np.flatnonzero(~present[:end].all(axis=1))
-    if holes.size:
-        i = int(holes[0])
-        col = wanted[int(np.argmin(present[i]))]
-        raise problem(name, col, "blank cell: every line needs the time and every mapped "
-                       "channel", i + 2)
-    if end == 0:
-        raise problem(name, None, "holds no samples under its header")
-    scale = TIME_UNITS[time_unit]
-    return CaptureData(name=name, sha256=reader.sha.hexdigest(), file_bytes=reader.total,
+    chunks = CaptureChunks(path, time_column, columns, time_unit=time_unit,
+                           chunk_rows=chunk_rows, progress=progress, name=name)
+    times: list[np.ndarray] = []
+    parts: dict[str, list[np.ndarray]] = {c: [] for c in columns}
+    for _, time_s, raw in chunks:
+        times.append(time_s)
+        for col in columns:
+            parts[col].append(raw[col])
+    return CaptureData(name=chunks.name, sha256=chunks.sha256, file_bytes=chunks.file_bytes,
                        time_column=time_column, time_unit=time_unit,
-                       time_s=data[time_column][:end] * scale,
-                       raw={c: data[c][:end] for c in columns},
-                       ignored=[h for h in header if h not in wanted])
+                       time_s=np.concatenate(times),
+                       raw={c: np.concatenate(parts.pop(c)) for c in columns},
+                       ignored=chunks.ignored)
+
+
+class CaptureChunks:
+    """The samples of a capture CSV, one checked chunk at a time (see :func:`read_capture`).
+
+    Iterating yields ``(first sample index, time in s, {column: values})`` per chunk; blank
+    lines at the end of the file are dropped, a blank cell anywhere else is an error. After
+    the last chunk, ``sha256`` (of the whole file) and ``samples`` are set.
+    """
+
+    def __init__(self, path: Path | str, time_column: str, columns: Sequence[str], *,
+                 time_unit: str = "s", chunk_rows: int = CHUNK_ROWS,
+                 progress: Progress | None = None, name: str | None = None):
+        self.path = Path(path)
+        self.name = name = name or str(path)
+        header = _header(self.path, name)
+        dupes = sorted({h for h in header if header.count(h) > 1})
+        if dupes:
+            raise problem(name, dupes[0], "column appears twice in the header", 1)
+        self.wanted = wanted = [time_column, *columns]
+        missing = [c for c in wanted if c not in header]
+        if missing:
+            what = "time column" if missing[0] == time_column else "channel column"
+            hint = " (name it with --time-column)" if missing[0] == time_column else ""
+            raise problem(name, missing[0], f"{what} not in the file{hint}; its columns are "
+                           f"{', '.join(header)}", 1)
+        if time_unit not in TIME_UNITS:
+            raise InvalidValue(f"time unit {time_unit!r}: use s, ms or us")
+        self.positions = [header.index(c) for c in wanted]
+        self.ignored = [h for h in header if h not in wanted]
+        self.time_column, self.columns = time_column, list(columns)
+        self.scale = TIME_UNITS[time_unit]
+        self.chunk_rows = chunk_rows
+        self.progress = progress
+        self.file_bytes = self.path.stat().st_size
+        self.sha256 = ""
+        self.samples = 0
+
+    def __iter__(self) -> Iterator[tuple[int, np.ndarray, dict[str, np.ndarray]]]:
+        name, wanted = self.name, self.wanted
+        reader = _CountingReader(self.path, self.progress)
+        rows = 0  # rows read so far (data lines)
+        blank_from: int | None = None  # first row of a run of blank lines not yet followed
+        try:
+            chunks = pd.read_csv(io.BufferedReader(reader, 1 << 20), usecols=self.positions,
+                                 header=0, chunksize=self.chunk_rows, engine="c",
+                                 skip_blank_lines=False, skipinitialspace=True,
+                                 encoding="utf-8-sig")
+            for chunk in chunks:
+                chunk.columns = [str(c).strip() for c in chunk.columns]
+                data = {col: _numbers(chunk[col], name, col, rows) for col in wanted}
+                del chunk
+                present = np.column_stack([~np.isnan(v) for v in data.values()])
+                filled = np.flatnonzero(present.any(axis=1))
+                end = int(filled[-1]) + 1 if filled.size else 0
+                if blank_from is not None and end:
+                    raise problem(name, wanted[0], "blank cell: every line needs the time and "
+                                  "every mapped channel", blank_from + 2)
+                holes = np.flatnonzero(~present[:end].all(axis=1))
+                if holes.size:
+                    i = int(holes[0])
+                    col = wanted[int(np.argmin(present[i]))]
+                    raise problem(name, col, "blank cell: every line needs the time and every "
+                                  "mapped channel", rows + i + 2)
+                if end < present.shape[0] and blank_from is None:
+                    blank_from = rows + end
+                first = rows
+                rows += present.shape[0]
+                if end:
+                    self.samples = first + end
+                    yield (first, data[self.time_column][:end] * self.scale,
+                           {c: data[c][:end] for c in self.columns})
+        except UnicodeDecodeError as exc:
+            raise problem(name, None, "not UTF-8 text past its header: export the capture as "
+                          "a plain CSV") from exc
+        except pd.errors.ParserError as exc:
+            raise problem(name, None, f"not a readable CSV: {exc}") from exc
+        finally:
+            reader.finish()
+        self.sha256 = reader.sha.hexdigest()
+        if self.samples == 0:
+            raise problem(name, None, "holds no samples under its header")
 
 
 def _numbers(values: pd.Series, name: str, column: str, first_row: int) -> np.ndarray:

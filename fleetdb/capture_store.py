@@ -4,11 +4,15 @@ Derived readings go into a new test through :func:`fleetdb.logbook.log_test` wit
 ``source = "capture"``, so they pass the same validation as an import and the checks,
 trends and board use them like typed ones. Absolute channels are converted with the test's
 barometer (measured, else the standard atmosphere at the site's elevation). The capture
-itself is stored with the test: the mapped columns as a compressed numpy archive
-(``numpy.savez_compressed``; float32 when that keeps every value within 1e-6 of the
-channel's range, else float64; time as start and step when every sample lies within 0.1 %
-of a step of the uniform grid, else in full) split into blocks, beside its channel map and
-what was derived. Voiding the test takes its derived readings out of the analysis; nothing
+itself is stored with the test: the mapped columns in blocks, one compressed numpy
+archive per chunk as read (``numpy.savez_compressed``; float32 when that keeps every value
+within 1e-6 of the channel's range in the chunk, else float64; time as start and step when
+every sample lies within 0.1 % of a step of the chunk's uniform grid, else in full; data
+format ``npz-blocks-1``, while ``npz-1`` captures, one archive split into 8 MiB blocks, still
+read back), beside its channel map and what was derived. The file is read into a spool on
+disk (:mod:`fleetdb.capture_stream`), so a long recording is analysed and compressed window
+by window in bounded memory; a capture of up to ``capture_stream.CORE_SAMPLES`` samples is
+analysed whole. Voiding the test takes its derived readings out of the analysis; nothing
 is deleted. The file format and channel map are in :mod:`fleetdb.capture_files`.
 
 The firing order (needed to name the cylinder of each starter-current hump) is a property
@@ -30,8 +34,9 @@ import numpy as np
 from sqlalchemy import text
 from sqlalchemy.engine import Connection, Engine
 
-from fleetdb import access, atmosphere, audit, capture_files
+from fleetdb import access, atmosphere, audit
 from fleetdb import capture as cap
+from fleetdb import capture_stream as stream
 from fleetdb.capture_files import CaptureData, Channel, Progress, parse_firing_order, problem
 from fleetdb.defaults import DEFAULTS
 from fleetdb.errors import FleetDBError, InvalidValue, UnitNotFound
@@ -39,8 +44,7 @@ from fleetdb.ingest import stamp
 from fleetdb.logbook import TypedReading, log_test
 from fleetdb.units import from_kpa
 
-BLOCK_BYTES = 8 * 1024 * 1024
-DATA_FORMAT = "npz-1"
+DATA_FORMAT = "npz-blocks-1"
 
 
 # -- deriving readings ------------------------------------------------------------------------
@@ -60,12 +64,13 @@ def _round(value: float | None, digits: int = 1) -> float | None:
     return None if value is None or not np.isfinite(value) else round(float(value), digits)
 
 
-def analyse(data: CaptureData, channels: Sequence[Channel], *, cylinders: int,
-            baro_kpa: float, firing_order: tuple[int, ...] | None = None,
+def analyse(data: CaptureData | stream.SpooledCapture, channels: Sequence[Channel], *,
+            cylinders: int, baro_kpa: float, firing_order: tuple[int, ...] | None = None,
             first_hump: int | None = None, idle_rpm: float | None = None) -> CaptureAnalysis:
     """Derive the readings of a capture (see :mod:`fleetdb.capture` for the methods).
 
-    :param data: the capture as read.
+    :param data: the capture as read: whole, or spooled (then analysed window by window,
+        see :mod:`fleetdb.capture_stream`).
     :param channels: the channel map.
     :param cylinders: the engine's cylinder count.
     :param baro_kpa: ambient absolute pressure, kPa (for absolute channels).
@@ -75,8 +80,9 @@ def analyse(data: CaptureData, channels: Sequence[Channel], *, cylinders: int,
     :raises InvalidInput: naming the file and column at fault.
     """
     _check_map(data.name, channels, cylinders, firing_order, first_hump)
+    long = isinstance(data, stream.SpooledCapture)
     try:
-        timing = cap.sampling(data.time_s)
+        timing = stream.check_time(data) if long else cap.sampling(data.time_s)
     except cap.CaptureError as exc:
         line = None if exc.index is None else exc.index + 2
         raise problem(data.name, data.time_column, str(exc), line) from exc
@@ -87,16 +93,22 @@ def analyse(data: CaptureData, channels: Sequence[Channel], *, cylinders: int,
     pressure: dict[int, cap.PressureResult] = {}
     ordered = sorted(channels, key=lambda c: ("pressure", "vacuum_cranking", "vacuum_idle",
                                               "current").index(c.kind))
+    rate = timing.rate_hz
     for ch in ordered:
-        raw = data.raw[ch.column]
         try:
-            cap.check_levels(raw)
-            si = cap.to_si(raw, ch.kind, ch.unit, slope=ch.slope, offset=ch.offset,
-                           absolute=ch.absolute, baro_kpa=baro_kpa)
+            if isinstance(data, stream.SpooledCapture):
+                stream.check_levels(data, ch.column)
+                windows = stream.Windows(data, ch, rate, baro_kpa)
+            else:
+                raw = data.raw[ch.column]
+                cap.check_levels(raw)
+                si = cap.to_si(raw, ch.kind, ch.unit, slope=ch.slope, offset=ch.offset,
+                               absolute=ch.absolute, baro_kpa=baro_kpa)
             summary: dict[str, Any] = {"column": ch.column, "kind": ch.kind,
                                        "cylinder": ch.cylinder}
             if ch.kind == "pressure":
-                res = cap.compression_events(data.time_s, si, timing.rate_hz)
+                res = (stream.compression_events(windows, rate) if long
+                       else cap.compression_events(data.time_s, si, rate))
                 pressure[ch.cylinder] = res
                 rpms.append(res.crank_rpm)
                 readings.append(TypedReading("compression", ch.cylinder,
@@ -105,18 +117,23 @@ def analyse(data: CaptureData, channels: Sequence[Channel], *, cylinders: int,
                 findings += _pressure_findings(ch, res)
             elif ch.kind in ("vacuum_cranking", "vacuum_idle"):
                 idle = ch.kind == "vacuum_idle"
-                res_v = cap.vacuum_summary(si, timing.rate_hz, idle=idle, cylinders=cylinders,
-                                           idle_rpm=idle_rpm)
+                res_v = (stream.vacuum_summary(windows, rate, idle=idle, cylinders=cylinders,
+                                               idle_rpm=idle_rpm) if long
+                         else cap.vacuum_summary(si, rate, idle=idle, cylinders=cylinders,
+                                                 idle_rpm=idle_rpm))
                 readings.append(TypedReading(ch.kind, None, f"{max(res_v.mean_kpa, 0.0):.2f}",
                                              "kPa"))
                 summary.update(_vacuum_summary(res_v))
                 findings += _vacuum_findings(ch, res_v)
             else:
                 sync = min(pressure) if pressure and first_hump is None else None
-                res_c = cap.current_humps(
-                    data.time_s, si, timing.rate_hz, cylinders, firing_order or (),
-                    sync_peak_times=None if sync is None else pressure[sync].peak_times_s,
-                    sync_cylinder=sync, first_hump=first_hump)
+                options: dict[str, Any] = {
+                    "sync_peak_times": None if sync is None else pressure[sync].peak_times_s,
+                    "sync_cylinder": sync, "first_hump": first_hump}
+                res_c = (stream.current_humps(windows, rate, cylinders, firing_order or (),
+                                              **options) if long
+                         else cap.current_humps(data.time_s, si, rate, cylinders,
+                                                firing_order or (), **options))
                 if not rpms:
                     rpms.append(res_c.crank_rpm)
                 readings += [TypedReading("relative", c, f"{pct:.1f}", "%")
@@ -337,6 +354,21 @@ def decode_samples(blob: bytes) -> tuple[np.ndarray, dict[str, np.ndarray]]:
     return time_s, raw
 
 
+def decode_blocks(blocks: Sequence[bytes], data_format: str = "npz-blocks-1"
+                  ) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """A stored capture's samples from its blocks, in order of ``seq``.
+
+    ``npz-blocks-1``: each block is one :func:`encode_samples` archive of a chunk as read;
+    ``npz-1`` (captures stored before): one archive split into blocks of 8 MiB.
+    """
+    if data_format == "npz-1":
+        return decode_samples(b"".join(blocks))
+    parts = [decode_samples(b) for b in blocks]
+    columns = list(parts[0][1])
+    return (np.concatenate([t for t, _ in parts]),
+            {c: np.concatenate([raw[c] for _, raw in parts]) for c in columns})
+
+
 def capture_test(engine: Engine, path: Path | str, fleet_no: str, tested_at: datetime | str,
                  hours: float | str, channels: Sequence[Channel], *, time_column: str = "t",
                  time_unit: str = "s", firing_order: tuple[int, ...] | None = None,
@@ -371,39 +403,42 @@ def capture_test(engine: Engine, path: Path | str, fleet_no: str, tested_at: dat
                     time_column=time_column, time_unit=time_unit, firing_order=firing_order,
                     first_hump=first_hump, idle_rpm=idle_rpm, conditions=conditions, by=by,
                     progress=progress, name=name)
-    report = prep.report
-    if dry_run:
-        return report
-    test_id = log_test(engine, fleet_no, tested_at, hours, report.analysis.readings,
-                       conditions=report.conditions, by=prep.by, source="capture",
-                       source_name=prep.source_name)
-    assert test_id is not None
     try:
-        report.capture_id = _store(engine, test_id, prep.data, channels, report.analysis,
-                                   prep.blob, prep.by, report.firing_order, prep.baro_kpa,
-                                   first_hump)
-        if prep.save_order and firing_order is not None:
-            with engine.begin() as conn:
-                conn.execute(text("INSERT INTO firing_order (family_id, firing_order, "
-                                  "created_at, created_by) VALUES (:f, :o, :at, :by)"),
-                             {"f": prep.family_id, "o": "-".join(map(str, firing_order)),
-                              "at": stamp(conn), "by": prep.by})
-                audit.record(conn, "family.firing_order", f"firing order of the engine family "
-                             f"set to {'-'.join(map(str, firing_order))} with capture "
-                             f"{prep.file_name}", family_id=prep.family_id,
-                             detail={"firing_order": list(firing_order)}, by=prep.by)
-            report.firing_order_saved = True
-    except Exception as exc:
-        # Never leave derived readings in the analysis without the capture they came from.
-        from fleetdb.logbook import void_test
+        report = prep.report
+        if dry_run:
+            return report
+        test_id = log_test(engine, fleet_no, tested_at, hours, report.analysis.readings,
+                           conditions=report.conditions, by=prep.by, source="capture",
+                           source_name=prep.source_name)
+        assert test_id is not None
+        try:
+            report.capture_id = _store(engine, test_id, prep.spool, channels, report.analysis,
+                                       prep.blocks, prep.by, report.firing_order, prep.baro_kpa,
+                                       first_hump)
+            if prep.save_order and firing_order is not None:
+                with engine.begin() as conn:
+                    conn.execute(text("INSERT INTO firing_order (family_id, firing_order, "
+                                      "created_at, created_by) VALUES (:f, :o, :at, :by)"),
+                                 {"f": prep.family_id, "o": "-".join(map(str, firing_order)),
+                                  "at": stamp(conn), "by": prep.by})
+                    audit.record(conn, "family.firing_order", "firing order of the engine "
+                                 f"family set to {'-'.join(map(str, firing_order))} with "
+                                 f"capture {prep.file_name}", family_id=prep.family_id,
+                                 detail={"firing_order": list(firing_order)}, by=prep.by)
+                report.firing_order_saved = True
+        except Exception as exc:
+            # Never leave derived readings in the analysis without the capture they came from.
+            from fleetdb.logbook import void_test
 
-        void_test(engine, test_id, f"its capture {prep.file_name} could not be stored: "
-                  f"{type(exc).__name__}", prep.by)
-        raise FleetDBError(f"{prep.file_name}: the capture could not be stored ({exc}); test "
-                           f"{test_id} was voided so its readings stay out of the analysis; "
-                           "log the capture again") from exc
-    report.test_id = test_id
-    return report
+            void_test(engine, test_id, f"its capture {prep.file_name} could not be stored: "
+                      f"{type(exc).__name__}", prep.by)
+            raise FleetDBError(f"{prep.file_name}: the capture could not be stored ({exc}); test "
+                               f"{test_id} was voided so its readings stay out of the analysis; "
+                               "log the capture again") from exc
+        report.test_id = test_id
+        return report
+    finally:
+        prep.spool.close()
 
 
 def preview_capture(engine: Engine, path: Path | str, fleet_no: str,
@@ -421,10 +456,14 @@ def preview_capture(engine: Engine, path: Path | str, fleet_no: str,
     """
     prep = _prepare(engine, Path(path), fleet_no, tested_at, hours, channels, **options)
     report = prep.report
+    try:
+        whole = prep.spool.whole()
+    finally:
+        prep.spool.close()
     shown = StoredCapture(
-        capture_id=None, test_id=None, file_name=prep.file_name, time_s=prep.data.time_s,
-        raw=prep.data.raw,
-        channel_map=_channel_map(prep.data, channels, report.firing_order, prep.baro_kpa,
+        capture_id=None, test_id=None, file_name=prep.file_name, time_s=whole.time_s,
+        raw=whole.raw,
+        channel_map=_channel_map(whole, channels, report.firing_order, prep.baro_kpa,
                                  options.get("first_hump")),
         derived=_derived(report.analysis))
     return report, shown
@@ -433,8 +472,8 @@ def preview_capture(engine: Engine, path: Path | str, fleet_no: str,
 @dataclass
 class _Prepared:
     report: CaptureReport
-    data: CaptureData
-    blob: bytes
+    spool: stream.SpooledCapture
+    blocks: list[int]  # bytes of each compressed block, in the spool's blocks file
     by: str
     baro_kpa: float
     family_id: int
@@ -462,8 +501,29 @@ def _prepare(engine: Engine, path: Path, fleet_no: str, tested_at: datetime | st
                            f"{unit['cylinders']} cylinders of {fleet_no}'s engine")
     order = firing_order or stored
     _check_map(shown_name, channels, unit["cylinders"], order, first_hump)
-    data = capture_files.read_capture(path, time_column, [c.column for c in channels],
-                                      time_unit=time_unit, progress=progress, name=shown_name)
+    spool = stream.spool_capture(path, time_column, [c.column for c in channels],
+                                 time_unit=time_unit, progress=progress, name=shown_name)
+    try:
+        return _prepare_spooled(engine, spool, fleet_no, tested_at, hours, channels,
+                                unit=unit, stored=stored, order=order, by=by,
+                                file_name=file_name, conditions=conditions,
+                                firing_order=firing_order, first_hump=first_hump,
+                                idle_rpm=idle_rpm)
+    except BaseException:
+        spool.close()
+        raise
+
+
+def _prepare_spooled(engine: Engine, spool: stream.SpooledCapture, fleet_no: str,
+                     tested_at: datetime | str, hours: float | str,
+                     channels: Sequence[Channel], *, unit: dict[str, Any],
+                     stored: tuple[int, ...] | None, order: tuple[int, ...] | None, by: str,
+                     file_name: str, conditions: dict[str, str],
+                     firing_order: tuple[int, ...] | None, first_hump: int | None,
+                     idle_rpm: float | None) -> _Prepared:
+    data: CaptureData | stream.SpooledCapture = spool
+    if spool.samples <= spool.core_samples:  # one window: analysed whole, as always
+        data = spool.whole()
     with engine.connect() as conn:
         before = conn.execute(text("SELECT id, test_id FROM capture WHERE content_sha256 = :h"),
                               {"h": data.sha256}).first()
@@ -483,20 +543,21 @@ def _prepare(engine: Engine, path: Path, fleet_no: str, tested_at: datetime | st
     source_name = f"{file_name} (derived readings)"
     log_test(engine, fleet_no, tested_at, hours, analysis.readings, conditions=conditions,
              by=by, source="capture", source_name=source_name, dry_run=True)
-    blob = encode_samples(data.time_s, data.raw)
+    blocks = _encode_blocks(spool)
     report = CaptureReport(file=data.name, fleet_no=fleet_no, test_id=None, capture_id=None,
                            analysis=analysis, channels=list(channels),
                            firing_order=order if uses_order else None,
-                           firing_order_saved=False, data_bytes=len(blob),
+                           firing_order_saved=False, data_bytes=sum(blocks),
                            file_bytes=data.file_bytes, conditions=conditions)
-    return _Prepared(report=report, data=data, blob=blob, by=by, baro_kpa=baro,
+    return _Prepared(report=report, spool=spool, blocks=blocks, by=by, baro_kpa=baro,
                      family_id=unit["family_id"],
                      save_order=uses_order and firing_order is not None and firing_order != stored,
                      file_name=file_name, source_name=source_name)
 
 
-def _channel_map(data: CaptureData, channels: Sequence[Channel], order: tuple[int, ...] | None,
-                 baro_kpa: float, first_hump: int | None) -> dict[str, Any]:
+def _channel_map(data: CaptureData | stream.SpooledCapture, channels: Sequence[Channel],
+                 order: tuple[int, ...] | None, baro_kpa: float,
+                 first_hump: int | None) -> dict[str, Any]:
     return {"channels": [asdict(c) for c in channels],
             "firing_order": None if order is None else "-".join(map(str, order)),
             "first_hump": first_hump, "baro_kpa": round(baro_kpa, 3),
@@ -509,11 +570,11 @@ def _derived(analysis: CaptureAnalysis) -> dict[str, Any]:
             "readings": [asdict(r) for r in analysis.readings]}
 
 
-def _store(engine: Engine, test_id: int, data: CaptureData, channels: Sequence[Channel],
-           analysis: CaptureAnalysis, blob: bytes, by: str, order: tuple[int, ...] | None,
-           baro_kpa: float, first_hump: int | None) -> int:
+def _store(engine: Engine, test_id: int, spool: stream.SpooledCapture,
+           channels: Sequence[Channel], analysis: CaptureAnalysis, blocks: list[int], by: str,
+           order: tuple[int, ...] | None, baro_kpa: float, first_hump: int | None) -> int:
     s = analysis.sampling
-    channel_map = _channel_map(data, channels, order, baro_kpa, first_hump)
+    channel_map = _channel_map(spool, channels, order, baro_kpa, first_hump)
     derived = _derived(analysis)
     with engine.begin() as conn:
         capture_id = conn.execute(text(
@@ -522,16 +583,40 @@ def _store(engine: Engine, test_id: int, data: CaptureData, channels: Sequence[C
             "derived_json, data_format, data_bytes, created_at, created_by) VALUES (:test, "
             ":name, :sha, :fb, :n, :rate, :start, :dur, :tc, :tu, :map, :derived, :fmt, :db, "
             ":at, :by) RETURNING id"),
-            {"test": test_id, "name": Path(data.name).name[:255], "sha": data.sha256,
-             "fb": data.file_bytes, "n": s.samples, "rate": s.rate_hz, "start": s.start_s,
-             "dur": s.duration_s, "tc": data.time_column[:120], "tu": data.time_unit,
+            {"test": test_id, "name": Path(spool.name).name[:255], "sha": spool.sha256,
+             "fb": spool.file_bytes, "n": s.samples, "rate": s.rate_hz, "start": s.start_s,
+             "dur": s.duration_s, "tc": spool.time_column[:120], "tu": spool.time_unit,
              "map": json.dumps(channel_map), "derived": json.dumps(derived),
-             "fmt": DATA_FORMAT, "db": len(blob), "at": stamp(conn), "by": by}).scalar_one()
-        conn.execute(text("INSERT INTO capture_block (capture_id, seq, data) VALUES "
-                          "(:c, :s, :d)"),
-                     [{"c": capture_id, "s": i, "d": blob[start:start + BLOCK_BYTES]}
-                      for i, start in enumerate(range(0, len(blob), BLOCK_BYTES))])
+             "fmt": DATA_FORMAT, "db": sum(blocks), "at": stamp(conn), "by": by}).scalar_one()
+        with open(_blocks_path(spool), "rb") as fh:
+            for seq, size in enumerate(blocks):
+                conn.execute(text("INSERT INTO capture_block (capture_id, seq, data) VALUES "
+                                  "(:c, :s, :d)"), {"c": capture_id, "s": seq,
+                                                    "d": fh.read(size)})
     return int(capture_id)
+
+
+def _blocks_path(spool: stream.SpooledCapture) -> Path:
+    return Path(spool.folder.name) / "blocks.npz-seq"
+
+
+def _encode_blocks(spool: stream.SpooledCapture) -> list[int]:
+    """Compress the spool, chunk by chunk as read, into one file of blocks; their sizes."""
+    sizes = []
+    with open(_blocks_path(spool), "wb") as fh:
+        for time_s, raw in spool.blocks():
+            if time_s.size < 2:  # a last chunk of one sample joins no grid: keep it in full
+                buffer = io.BytesIO()
+                arrays = {"time": time_s}
+                for i, (column, values) in enumerate(raw.items()):
+                    arrays[f"ch{i}"], arrays[f"name{i}"] = values, np.array(column)
+                np.savez_compressed(buffer, **arrays)
+                blob = buffer.getvalue()
+            else:
+                blob = encode_samples(time_s, raw)
+            fh.write(blob)
+            sizes.append(len(blob))
+    return sizes
 
 
 @dataclass
@@ -565,13 +650,15 @@ def load_capture(engine: Engine, capture_id: int) -> StoredCapture:
     :param capture_id: the capture.
     """
     with engine.connect() as conn:
-        row = conn.execute(text("SELECT test_id, file_name, channel_map_json, derived_json "
-                                "FROM capture WHERE id = :id"), {"id": capture_id}).first()
+        row = conn.execute(text("SELECT test_id, file_name, channel_map_json, derived_json, "
+                                "data_format FROM capture WHERE id = :id"),
+                           {"id": capture_id}).first()
         if row is None:
             raise FleetDBError(f"no capture with id {capture_id}")
+        fmt = row[4]
         blocks = conn.execute(text("SELECT data FROM capture_block WHERE capture_id = :id "
                                    "ORDER BY seq"), {"id": capture_id}).scalars().all()
-    time_s, raw = decode_samples(b"".join(bytes(b) for b in blocks))
+    time_s, raw = decode_blocks([bytes(b) for b in blocks], fmt)
     return StoredCapture(capture_id=capture_id, test_id=int(row[0]), file_name=row[1],
                          time_s=time_s, raw=raw, channel_map=json.loads(row[2]),
                          derived=json.loads(row[3]))
