@@ -177,7 +177,6 @@ def _series_points(fr: Frames, res: checks.CheckResult, as_of: pd.Timestamp) -> 
                                                                         na_value=np.nan),
         "value_kpa": value, "value_sl": value * (101.325 / of_test("baro_kpa")),
         "voided": of_test("voided", bool), "trustworthy": trusted[at]})
-    pts["limit"] = fams["min_compression_kpa"].reindex(pts["family_id"]).to_numpy(float)
     ratio_fams = fams.index[fams["spread_rule"] == "ratio"]
     summ = res.tests.join(tests[["unit_id", "family_id", "tested_at", "hours", "voided"]])
     summ = summ[summ["dry_ratio"].notna() & summ["family_id"].isin(ratio_fams)]
@@ -188,13 +187,9 @@ def _series_points(fr: Frames, res: checks.CheckResult, as_of: pd.Timestamp) -> 
         "value_kpa": np.nan, "value_sl": summ["dry_ratio"].to_numpy(float),
         "voided": summ["voided"].to_numpy(dtype=bool),
         "trustworthy": summ["trustworthy"].to_numpy(dtype=bool)})
-    spread["limit"] = fams["min_ratio"].reindex(spread["family_id"]).to_numpy(float)
     pts = pd.concat([pts, spread], ignore_index=True)
+    del spread, summ
     pts["in_fit"] = pts["trustworthy"] & ~pts["voided"]
-    is_spread = pts["cylinder"].to_numpy() == SPREAD_CYLINDER
-    k = fams["cylinders"].reindex(pts["family_id"]).to_numpy(float)
-    pts["step_level"] = np.where(is_spread, 1 - FAMILY_ALPHA, 1 - FAMILY_ALPHA / k)
-    pts["min_drop"] = np.where(is_spread, MIN_DROP_RATIO, MIN_DROP_FRACTION * pts["limit"])
     cyl_count = fams["cylinders"].reindex(fr.units["family_id"]).set_axis(fr.units.index)
     pts["event_seg"] = _event_segments(pts, fr.events, cyl_count)
     pts["cylinder"] = pts["cylinder"].astype(int)
@@ -208,16 +203,53 @@ def _series_points(fr: Frames, res: checks.CheckResult, as_of: pd.Timestamp) -> 
     pair_codes, pair_keys = pd.factorize(pair)
     now = pd.DataFrame({"unit_id": pair_keys // 1000, "cylinder": pair_keys % 1000,
                         "tested_at": as_of})
-    pts["current_seg"] = _event_segments(now, fr.events, cyl_count)[pair_codes]
-    pts["current"] = pts["event_seg"] == pts["current_seg"]
+    current_seg = _event_segments(now, fr.events, cyl_count)[pair_codes]
+    pts["current"] = pts["event_seg"].to_numpy() == current_seg
+    # Millions of rows are held to the end of a refresh: each key column in the smallest
+    # integer type that holds its values exactly (the series key stays 64-bit).
+    for col in ("test_id", "unit_id", "family_id", "cylinder", "event_seg", "group"):
+        pts[col] = _narrow(pts[col].to_numpy())
     return pts
 
 
-_FIT_COLUMNS = ["series", "group", "hours", "value_sl", "limit", "step_level", "min_drop"]
+def _narrow(values: np.ndarray) -> np.ndarray:
+    """Integers in the smallest type that holds every value exactly."""
+    if values.size == 0:
+        return values
+    low, high = values.min(), values.max()
+    for kind in (np.int8, np.int16, np.int32):
+        info = np.iinfo(kind)
+        if info.min <= low and high <= info.max:
+            return values.astype(kind)
+    return values
+
+
+def _fit_frame(pts: pd.DataFrame, rows: np.ndarray, fams: pd.DataFrame) -> pd.DataFrame:
+    """The fit's input for some points: series, pooling group, hours, value, the limit and
+    each reading's step level and least drop (derived here, not held for every point).
+
+    A cylinder's limit is the family minimum and its step level Bonferroni over the
+    family's cylinders; the spread's limit is the family's ``min_ratio``.
+    """
+    sel = pts.loc[rows, ["series", "group", "hours", "value_sl", "family_id", "cylinder"]]
+    family = sel["family_id"].to_numpy()
+    is_spread = sel["cylinder"].to_numpy() == SPREAD_CYLINDER
+    limit = np.where(is_spread, fams["min_ratio"].reindex(family).to_numpy(float),
+                     fams["min_compression_kpa"].reindex(family).to_numpy(float))
+    k = fams["cylinders"].reindex(family).to_numpy(float)
+    return pd.DataFrame({
+        "series": sel["series"].to_numpy(np.int64), "group": sel["group"].to_numpy(np.int64),
+        "hours": sel["hours"].to_numpy(), "value_sl": sel["value_sl"].to_numpy(),
+        "limit": limit,
+        "step_level": np.where(is_spread, 1 - FAMILY_ALPHA, 1 - FAMILY_ALPHA / k),
+        "min_drop": np.where(is_spread, MIN_DROP_RATIO, MIN_DROP_FRACTION * limit)},
+        index=sel.index)
+
+
 _STEP_COLUMNS = ["step", "expected", "lower_bound"]
 
 
-def _fit_by_group(pts: pd.DataFrame, in_fit: np.ndarray,
+def _fit_by_group(pts: pd.DataFrame, in_fit: np.ndarray, fams: pd.DataFrame,
                   family_params: pd.DataFrame | None) -> tuple[pd.DataFrame, pd.DataFrame]:
     """``fleetfit.fit_fleet`` of the points in the fits, one pooling group (family, or a
     family's spread) at a time on a large fleet.
@@ -228,7 +260,7 @@ def _fit_by_group(pts: pd.DataFrame, in_fit: np.ndarray,
     """
     def fit(rows: np.ndarray) -> tuple[pd.DataFrame, pd.DataFrame]:
         fits, steps = fleetfit.fit_fleet(
-            pts.loc[rows, _FIT_COLUMNS], series="series", group="group", x="hours",
+            _fit_frame(pts, rows, fams), series="series", group="group", x="hours",
             y="value_sl", limit="limit", step_confidence="step_level", min_drop="min_drop",
             family_params=family_params, return_points=True)
         return fits, steps[_STEP_COLUMNS]
@@ -259,7 +291,7 @@ def assess(fr: Frames, as_of: pd.Timestamp, *, horizon_weeks: int = HORIZON_WEEK
     res = _check(fr, all_findings)
     pts = _series_points(fr, res, as_of)
     in_fit = pts["in_fit"].to_numpy(dtype=bool)
-    fits, steps = _fit_by_group(pts, in_fit, family_params)
+    fits, steps = _fit_by_group(pts, in_fit, fr.families, family_params)
     pts["step"] = False
     pts["expected"] = np.nan
     pts["lower_bound"] = np.nan
