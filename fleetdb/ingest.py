@@ -17,7 +17,7 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import text
+from sqlalchemy import bindparam, text
 from sqlalchemy.engine import Connection, Engine
 from sqlalchemy.exc import IntegrityError
 
@@ -172,12 +172,18 @@ def none_for_na(values: pd.Series) -> list:
 
 # -- reference data ---------------------------------------------------------------------
 
-def unit_refs(conn: Connection) -> pd.DataFrame:
-    """Known units: index fleet_no; unit_id, cylinders, fuel, site_baro_kpa, site, family."""
-    rows = conn.execute(text(
-        "SELECT u.fleet_no, u.id, f.cylinders, f.fuel, s.elevation_m, s.name, f.name "
-        "FROM unit u JOIN engine_family f ON f.id = u.family_id JOIN site s ON s.id = u.site_id"
-    )).all()
+def unit_refs(conn: Connection, fleet_nos: Iterable[str] | None = None) -> pd.DataFrame:
+    """Known units: index fleet_no; unit_id, cylinders, fuel, site_baro_kpa, site, family.
+
+    :param fleet_nos: only these fleet numbers (those not known are simply absent); None: all.
+    """
+    sql = ("SELECT u.fleet_no, u.id, f.cylinders, f.fuel, s.elevation_m, s.name, f.name "
+           "FROM unit u JOIN engine_family f ON f.id = u.family_id JOIN site s ON s.id = u.site_id")
+    if fleet_nos is None:
+        rows = conn.execute(text(sql)).all()
+    else:
+        rows = conn.execute(text(sql + " WHERE u.fleet_no IN :fleet_nos").bindparams(
+            bindparam("fleet_nos", expanding=True)), {"fleet_nos": list(fleet_nos)}).all()
     frame = pd.DataFrame(rows, columns=["fleet_no", "unit_id", "cylinders", "fuel",
                                         "elevation_m", "site", "engine_family"])
     frame["site_baro_kpa"] = atmosphere.pressure_kpa(frame["elevation_m"].astype(float))
@@ -299,7 +305,10 @@ def raise_if(problems: validate.Problems) -> None:
 def _import_tests(conn: Connection, csv: CsvFile, report: ImportReport, *, batch_id: int | None,
                   by: str, progress: Progress | None, source: str) -> None:
     problems = validate.Problems(csv.name)
-    units = unit_refs(conn)
+    # A file of a few units (a logged test) reads only those units.
+    named = csv.frame["fleet_no"].unique()
+    units = unit_refs(conn, None if len(named) > UNITS_READ_BY_INDEX
+                      else [f for f in named.tolist() if isinstance(f, str)])
     now = pd.Timestamp.now() + pd.Timedelta(days=1)
     # The text of the columns that messages quote later stays with the file; the rest is
     # handed to tests_rows, which frees each column once converted.
@@ -347,10 +356,12 @@ def _import_tests(conn: Connection, csv: CsvFile, report: ImportReport, *, batch
     tests["line"] = rows.index.to_numpy()[first_line]
     del firsts
 
+    file_units = _unit_list(tests["unit_id"])
     existing = pd.DataFrame(conn.execute(text(
-        "SELECT unit_id, tested_at, hours FROM test")).all(), columns=key)
+        "SELECT unit_id, tested_at, hours FROM test" + _units_where(file_units))).all(),
+        columns=key)
     existing["tested_at"] = pd.to_datetime(existing["tested_at"]).astype("datetime64[us]")
-    _check_hours_forward(conn, tests, existing, problems)
+    _check_hours_forward(conn, tests, existing, problems, file_units)
     raise_if(problems)
 
     merged = tests.merge(existing.assign(present=True), on=key, how="left")
@@ -463,12 +474,33 @@ def _allocate_ids(conn: Connection, table: str, n: int) -> list[int]:
     return list(range(start + 1, start + 1 + n))
 
 
+#: Up to this many units in a file, the stored tests and events are read for those units
+#: only (through the unit's index); a larger file reads them whole, one scan.
+UNITS_READ_BY_INDEX = 500
+
+
+def _unit_list(unit_ids: pd.Series) -> list[int] | None:
+    """The distinct units of a file, or None when there are too many to name in a query."""
+    distinct = unit_ids.unique()
+    return None if len(distinct) > UNITS_READ_BY_INDEX else sorted(int(u) for u in distinct)
+
+
+def _units_where(unit_ids: list[int] | None, first: bool = True) -> str:
+    """``WHERE unit_id IN (...)`` for these units (integers, written inline); '' for all."""
+    if unit_ids is None:
+        return ""
+    return f" {'WHERE' if first else 'AND'} unit_id IN ({','.join(map(str, unit_ids)) or 'NULL'})"
+
+
 def _check_hours_forward(conn: Connection, tests: pd.DataFrame, existing: pd.DataFrame,
-                         problems: validate.Problems) -> None:
-    """Hour meters only go forward in time, except across a recorded meter replacement."""
+                         problems: validate.Problems, unit_ids: list[int] | None) -> None:
+    """Hour meters only go forward in time, except across a recorded meter replacement.
+
+    :param existing: the stored tests of ``unit_ids`` (None: of every unit).
+    """
     meters = pd.DataFrame(conn.execute(text(
-        "SELECT unit_id, date FROM service_event WHERE kind = 'hour_meter'")).all(),
-        columns=["unit_id", "date"])
+        "SELECT unit_id, date FROM service_event WHERE kind = 'hour_meter'"
+        + _units_where(unit_ids, first=False))).all(), columns=["unit_id", "date"])
     frame = pd.concat([existing.assign(line=np.nan),
                        tests[["unit_id", "tested_at", "hours", "line"]]], ignore_index=True)
     frame = frame.drop_duplicates(["unit_id", "tested_at", "hours"], keep="last")

@@ -133,7 +133,12 @@ def test_duplicate_reading(fleet: Engine, tmp_path: Path) -> None:
         ingest.import_files(fleet, [path])
 
 
-def test_hours_going_backwards(fleet: Engine, tmp_path: Path) -> None:
+@pytest.mark.parametrize("read_by_index", [True, False], ids=["units-of-file", "all-units"])
+def test_hours_going_backwards(fleet: Engine, tmp_path: Path, read_by_index: bool,
+                               monkeypatch: pytest.MonkeyPatch) -> None:
+    # A file of a few units reads the stored tests, events and units of those units only;
+    # a large one reads them whole. Both give the same messages and writes.
+    monkeypatch.setattr(ingest, "UNITS_READ_BY_INDEX", 500 if read_by_index else 0)
     ingest.import_files(fleet, [DATA / "tests.csv"])
     path = write(tmp_path / "h.csv", f"""{HEADER}
         T-101,2024-06-01,1100,compression,1,150,psi,,,,,,,""")
