@@ -6,10 +6,12 @@ module's fetchall into a DataFrame, then a closed-form numpy OLS per cylinder se
 projections, levels, snapshot). Each runs in its own child process; we report median wall
 time, peak memory and the ratio. Goals: ours no slower than the baseline, peak under 2 GB.
 
-Then, on the same store: a test logged on each of ``--samples`` units and that unit
-refreshed (``health.refresh_units``, what logging a test runs), beside a baseline in the
-same process: a plain SELECT of the unit's compression readings and a numpy OLS per
-cylinder. Goal: under 100 ms median.
+Then, on the same store: a test logged on each of ``--samples`` units
+(``logbook.log_test``: validation, duplicate and hour-meter checks, the write, the audit
+row) and that unit refreshed (``health.refresh_units``, what logging a test runs), each
+beside a baseline in the same process: for the log, a plain sqlite3 INSERT of one test and
+its readings, committed; for the refresh, a plain SELECT of the unit's compression readings
+and a numpy OLS per cylinder. Goal for the refresh: under 100 ms median.
 
     python -m tests.bench.bench_refresh [--small] [--units N] [--repeat R] [--samples S]
 """
@@ -19,6 +21,7 @@ from __future__ import annotations
 import argparse
 import json
 import shutil
+import sqlite3
 import statistics
 import subprocess
 import sys
@@ -61,13 +64,29 @@ ONE_UNIT_SQL = ("SELECT r.cylinder, t.hours, r.value_si FROM reading r JOIN test
                 "t.id = r.test_id WHERE t.unit_id = ? AND r.kind = 'compression'")
 
 
+def _plain_insert(plain: sqlite3.Connection, uid: int, when: str, hours: float,
+                  cylinders: int) -> None:
+    """The logging baseline: one test and its compression readings, plain INSERTs, committed."""
+    at = time.strftime("%Y-%m-%d %H:%M:%S")
+    test_id = plain.execute(
+        "INSERT INTO test (unit_id, tested_at, hours, battery_v, crank_rpm, engine_temp_c, "
+        "source, created_at, created_by) VALUES (?, ?, ?, 10.5, 250, 80, 'cli', ?, 'bench')",
+        (uid, when, hours, at)).lastrowid
+    plain.executemany(
+        "INSERT INTO reading (test_id, kind, cylinder, value_si, typed_value, typed_unit) "
+        "VALUES (?, 'compression', ?, 1034.2, '150', 'psi')",
+        [(test_id, c) for c in range(1, cylinders + 1)])
+    plain.commit()
+
+
 def _one_unit(path: str, samples: int) -> None:
-    """Log a test on each of ``samples`` units, then time refreshing that unit, interleaved
-    with the baseline: one plain SELECT of the unit's compression readings and a numpy OLS
-    per cylinder, on the same store, in the same process. Prints the times as JSON (ms).
+    """Log a test on each of ``samples`` units, then refresh that unit, each timed beside its
+    baseline on the same store, in the same process: for the log, a plain INSERT of one test
+    and its readings (:func:`_plain_insert`, on the same unit after the refresh, so the
+    refresh never sees it); for the refresh, one plain SELECT of the unit's compression
+    readings and a numpy OLS per cylinder. Prints the times as JSON (ms).
     """
     import random
-    import sqlite3
 
     import numpy as np
 
@@ -80,14 +99,16 @@ def _one_unit(path: str, samples: int) -> None:
                           "MAX(t.hours) FROM unit u JOIN engine_family f ON f.id = u.family_id "
                           "JOIN test t ON t.unit_id = u.id GROUP BY u.id").fetchall()
     picked = random.Random(7).sample(units, min(samples, len(units)))
-    ours, base = [], []
+    ours, base, log_ours, log_base = [], [], [], []
     for uid, fleet_no, cylinders, last_at, last_hours in picked:
         when = str(np.datetime64(last_at[:16]) + np.timedelta64(30, "D")).replace("T", " ")
+        start = time.perf_counter()
         logbook.log_test(engine, fleet_no, when, f"{last_hours + 150:.1f}",
                          [logbook.TypedReading("compression", c, "150", "psi")
                           for c in range(1, cylinders + 1)],
                          conditions={"battery_v": "10.5", "crank_rpm": "250",
                                      "engine_temp_c": "80"})
+        log_ours.append((time.perf_counter() - start) * 1000)
         start = time.perf_counter()
         rows = plain.execute(ONE_UNIT_SQL, (uid,)).fetchall()
         cyl, x, y = (np.array(col, dtype=float) for col in zip(*rows, strict=True))
@@ -99,7 +120,12 @@ def _one_unit(path: str, samples: int) -> None:
         start = time.perf_counter()
         health.refresh_units(engine, [uid])
         ours.append((time.perf_counter() - start) * 1000)
-    print(json.dumps({"units": len(picked), "ours_ms": ours, "baseline_ms": base}))
+        later = str(np.datetime64(last_at[:16]) + np.timedelta64(60, "D")).replace("T", " ")
+        start = time.perf_counter()
+        _plain_insert(plain, uid, later + ":00.000000", last_hours + 300, cylinders)
+        log_base.append((time.perf_counter() - start) * 1000)
+    print(json.dumps({"units": len(picked), "ours_ms": ours, "baseline_ms": base,
+                      "log_ours_ms": log_ours, "log_baseline_ms": log_base}))
 
 
 def _ours(path: str) -> None:
@@ -174,12 +200,19 @@ def main(small: bool = False, units: int | None = None, repeat: int | None = Non
     print(f"one unit after a logged test ({one_unit['units']} units): refresh_units median "
           f"{one_ours:.1f} ms; baseline (SELECT of the unit's readings + numpy OLS) median "
           f"{one_base:.1f} ms; ratio {one_ours / one_base:.1f}  (goal < 100 ms)")
+    log_ours = statistics.median(one_unit["log_ours_ms"])
+    log_base = statistics.median(one_unit["log_baseline_ms"])
+    print(f"logging that test: log_test median {log_ours:.1f} ms; baseline (plain sqlite3 "
+          f"INSERT of one test and its readings) median {log_base:.1f} ms; ratio "
+          f"{log_ours / log_base:.1f}")
     OUT.mkdir(exist_ok=True)
     stamp = time.strftime("%Y%m%dT%H%M%SZ", time.gmtime())
     (OUT / f"refresh-{units}u-{stamp}.json").write_text(json.dumps(
         {"units": units, "counts": counts, "results": table, "ratio": ours / base,
          "ratio_per_run": per_run, "ratio_cpu": med("ours", 2) / med("baseline", 2),
-         "one_unit": {"median_ms": one_ours, "baseline_median_ms": one_base, **one_unit}},
+         "one_unit": {"median_ms": one_ours, "baseline_median_ms": one_base,
+                      "log_median_ms": log_ours, "log_baseline_median_ms": log_base,
+                      **one_unit}},
         indent=1))
 
 
