@@ -7,12 +7,16 @@ PostgreSQL tests skip with the reason shown; under CI (CI=true) that skip is a f
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
+import logging
 import os
 import shutil
+import threading
 import uuid
 from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 import pytest
 from sqlalchemy import create_engine, text
@@ -126,3 +130,20 @@ def copy_store(store: Path, folder: Path, name: str = "demo.sqlite") -> str:
     copy = folder / name
     shutil.copy(store, copy)
     return f"sqlite:///{copy}"
+
+
+@contextlib.contextmanager
+def served(app: Any, name: str) -> Iterator[str]:
+    """Serve a Dash app with werkzeug on 127.0.0.1 (a free port) from a daemon thread;
+    yields its base URL and shuts the server down after."""
+    from werkzeug.serving import make_server
+
+    logging.getLogger("werkzeug").setLevel(logging.WARNING)
+    server = make_server("127.0.0.1", 0, app.server, threaded=True)
+    thread = threading.Thread(target=server.serve_forever, name=name, daemon=True)
+    thread.start()
+    try:
+        yield f"http://127.0.0.1:{server.server_port}"
+    finally:
+        server.shutdown()
+        thread.join(timeout=10)

@@ -7,7 +7,6 @@ session holding its own cookie, as a browser would.
 from __future__ import annotations
 
 import json
-import threading
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -20,7 +19,7 @@ from sqlalchemy import text
 from dashboard import create_app, data, ids
 from fleetdb import access, audit, db, ingest, migrate, users
 from fleetdb.cli import cli
-from tests.conftest import DATA
+from tests.conftest import DATA, served
 
 PASSWORDS = {"tom": "technician pw", "tia": "technician two", "pat": "planner pw",
              "meg": "manager pw", "ada": "admin pw 1"}
@@ -41,20 +40,10 @@ def store_url(tmp_path: Path) -> Iterator[str]:
     data.unit_engine.cache_clear()
 
 
-def _serve(url: str, auth: bool) -> Iterator[str]:
-    from werkzeug.serving import make_server
-
-    server = make_server("127.0.0.1", 0, create_app(url, auth=auth).server, threaded=True)
-    thread = threading.Thread(target=server.serve_forever, daemon=True)
-    thread.start()
-    yield f"http://127.0.0.1:{server.server_port}"
-    server.shutdown()
-    thread.join(timeout=10)
-
-
 @pytest.fixture
 def base(store_url: str) -> Iterator[str]:
-    yield from _serve(store_url, auth=True)
+    with served(create_app(store_url, auth=True), "dash-auth") as url:
+        yield url
 
 
 def login(base: str, name: str) -> requests.Session:
@@ -248,7 +237,7 @@ def test_a_disabled_user_is_out_at_once(base: str, store_url: str) -> None:
 
 
 def test_without_login_every_request_acts_as_the_local_user(store_url: str) -> None:
-    for base in _serve(store_url, auth=False):
+    with served(create_app(store_url, auth=False), "dash-no-login") as base:
         anon = requests.Session()
         assert anon.get(f"{base}/").status_code == 200
         assert anon.get(f"{base}/login", allow_redirects=False).status_code == 302

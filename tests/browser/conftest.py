@@ -9,9 +9,8 @@ Never run ``playwright install``: it downloads a browser; we use the system's.
 
 from __future__ import annotations
 
-import logging
+import contextlib
 import os
-import threading
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -21,6 +20,7 @@ from sqlalchemy import text
 
 from dashboard import create_app, data
 from fleetdb import db, ingest, migrate
+from tests.conftest import served
 
 CHROMIUM = Path("/usr/bin/chromium")
 CHROMIUM_FLAGS = [
@@ -69,25 +69,11 @@ def store_url(tmp_path: Path) -> Iterator[str]:
     data.unit_engine.cache_clear()
 
 
-@pytest.fixture
-def live_server(store_url: str) -> Iterator[str]:
-    """The dashboard on this test's store, served in-process; yields its base URL."""
-    from werkzeug.serving import make_server
-
-    logging.getLogger("werkzeug").setLevel(logging.WARNING)
-    app = create_app(store_url, auth=False)
-    server = make_server("127.0.0.1", 0, app.server, threaded=True)
-    thread = threading.Thread(target=server.serve_forever, name="dash-under-test", daemon=True)
-    thread.start()
-    yield f"http://127.0.0.1:{server.server_port}"
-    server.shutdown()
-    thread.join(timeout=10)
-
-
-@pytest.fixture
-def page(browser: Any, live_server: str) -> Iterator[Any]:
-    """A fresh browser context and page on the live app; the context is closed after."""
-    context = browser.new_context(base_url=live_server, viewport={"width": 1280, "height": 900})
+@contextlib.contextmanager
+def opened_tab(browser: Any, base_url: str) -> Iterator[Any]:
+    """A fresh browser context and page on ``base_url``; fails the test on a JavaScript
+    error and closes the context after."""
+    context = browser.new_context(base_url=base_url, viewport={"width": 1280, "height": 900})
     context.set_default_timeout(WAIT_MS)
     tab = context.new_page()
     errors: list[str] = []
@@ -95,6 +81,20 @@ def page(browser: Any, live_server: str) -> Iterator[Any]:
     yield tab
     context.close()
     assert errors == [], f"JavaScript errors on the page: {errors}"
+
+
+@pytest.fixture
+def live_server(store_url: str) -> Iterator[str]:
+    """The dashboard on this test's store, served in-process; yields its base URL."""
+    with served(create_app(store_url, auth=False), "dash-under-test") as url:
+        yield url
+
+
+@pytest.fixture
+def page(browser: Any, live_server: str) -> Iterator[Any]:
+    """A fresh browser context and page on the live app; the context is closed after."""
+    with opened_tab(browser, live_server) as tab:
+        yield tab
 
 
 @pytest.fixture

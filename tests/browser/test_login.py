@@ -6,8 +6,6 @@ one technician and one planner.
 
 from __future__ import annotations
 
-import logging
-import threading
 from collections.abc import Iterator
 from typing import Any
 
@@ -15,7 +13,8 @@ import pytest
 
 from dashboard import create_app
 from fleetdb import db, users
-from tests.browser.conftest import WAIT_MS
+from tests.browser.conftest import opened_tab
+from tests.conftest import served
 
 pytestmark = pytest.mark.browser
 
@@ -25,31 +24,17 @@ PASSWORDS = {"tom": "technician pw", "pat": "planner pw"}
 @pytest.fixture
 def login_server(store_url: str) -> Iterator[str]:
     """The dashboard with login on, served in-process; yields its base URL."""
-    from werkzeug.serving import make_server
-
     engine = db.get_engine(store_url)
     users.add_user(engine, "tom", "technician", PASSWORDS["tom"])
     users.add_user(engine, "pat", "planner", PASSWORDS["pat"])
-    logging.getLogger("werkzeug").setLevel(logging.WARNING)
-    server = make_server("127.0.0.1", 0, create_app(store_url, auth=True).server,
-                         threaded=True)
-    thread = threading.Thread(target=server.serve_forever, name="dash-login", daemon=True)
-    thread.start()
-    yield f"http://127.0.0.1:{server.server_port}"
-    server.shutdown()
-    thread.join(timeout=10)
+    with served(create_app(store_url, auth=True), "dash-login") as url:
+        yield url
 
 
 @pytest.fixture
 def tab(browser: Any, login_server: str) -> Iterator[Any]:
-    context = browser.new_context(base_url=login_server, viewport={"width": 1280, "height": 900})
-    context.set_default_timeout(WAIT_MS)
-    page = context.new_page()
-    errors: list[str] = []
-    page.on("pageerror", lambda exc: errors.append(str(exc)))
-    yield page
-    context.close()
-    assert errors == [], f"JavaScript errors on the page: {errors}"
+    with opened_tab(browser, login_server) as page:
+        yield page
 
 
 def _log_in(tab: Any, name: str, password: str) -> None:
