@@ -1,7 +1,8 @@
 """The child side of :mod:`fleetdb.arrowread`: ``python -m fleetdb._arrow_child DB OUT SQL...``.
 
 Imports only the Arrow SQLite driver, runs each query and writes one Arrow IPC file per
-query (``OUT.0``, ``OUT.1``, ...).
+query (``OUT.0``, ``OUT.1``, ... for an ``OUT`` ending in ``.arrow``; one query to the
+file ``OUT`` itself otherwise).
 """
 
 from __future__ import annotations
@@ -32,6 +33,8 @@ def read_many_to_ipc(path: str, queries: list[str], out_paths: list[str]) -> int
 
 
 if __name__ == "__main__":
-    out = sys.argv[2]
-    sqls = sys.argv[3:]
-    read_many_to_ipc(sys.argv[1], sqls, [f"{out}.{i}" for i in range(len(sqls))])
+    if sys.argv[2].endswith(".arrow"):  # DB OUT SQL...: OUT.0, OUT.1, ...
+        sqls = sys.argv[3:]
+        read_many_to_ipc(sys.argv[1], sqls, [f"{sys.argv[2]}.{i}" for i in range(len(sqls))])
+    else:  # DB OUT.i SQL: one query to the file named
+        read_to_ipc(sys.argv[1], sys.argv[3], sys.argv[2])

@@ -39,22 +39,37 @@ def read_sqlite(path: str, sql: str) -> pd.DataFrame:
     return read_sqlite_many(path, [sql])[0]
 
 
-def read_sqlite_many(path: str, queries: list[str]) -> list[pd.DataFrame]:
+def read_sqlite_many(path: str, queries: list[str], *,
+                     concurrent: bool = False) -> list[pd.DataFrame]:
     """Run several queries in one child process (one start-up); a DataFrame each.
 
     The queries must return no NULLs (see :func:`read_sqlite`); wrap a nullable column
     in ``COALESCE`` beside an ``IS NULL`` flag.
+
+    :param concurrent: one child per query, all running at once (on a machine with more
+        than one core, the reads overlap). Each child reads in its own transaction: the
+        queries must bound what they read (for example by the highest id at the start)
+        when they have to agree with each other under concurrent writers.
     """
     import pyarrow as pa
 
     fd, out_path = tempfile.mkstemp(prefix="fleetdb-read-", suffix=".arrow")
     os.close(fd)
     outs = [f"{out_path}.{i}" for i in range(len(queries))]
+    child = [sys.executable, "-m", "fleetdb._arrow_child", path]
     try:
-        done = subprocess.run([sys.executable, "-m", "fleetdb._arrow_child", path, out_path,
-                               *queries], capture_output=True, text=True, check=False)
-        if done.returncode != 0:
-            raise RuntimeError(f"Arrow read of {path} failed: {done.stderr.strip()[-500:]}")
+        if concurrent:
+            runs = [subprocess.Popen([*child, out, sql], stdout=subprocess.DEVNULL,
+                                     stderr=subprocess.PIPE, text=True)
+                    for sql, out in zip(queries, outs, strict=True)]
+            failed = [(run.communicate()[1], run.returncode) for run in runs]
+            errors = [err for err, code in failed if code != 0]
+        else:
+            done = subprocess.run([*child, out_path, *queries], capture_output=True, text=True,
+                                  check=False)
+            errors = [done.stderr] if done.returncode != 0 else []
+        if errors:
+            raise RuntimeError(f"Arrow read of {path} failed: {errors[0].strip()[-500:]}")
         frames = []
         for out in outs:
             with pa.memory_map(out, "r") as source:

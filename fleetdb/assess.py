@@ -490,8 +490,13 @@ def _reasons(fr: Frames, res: checks.CheckResult, pts: pd.DataFrame, fits: pd.Da
                                                           <= horizon)]
     if len(soon):
         cur = fits[fits["current"]]
-        cur = cur.assign(cross_planning=_not_before(cur["cross_planning"], cur["last_x"]))
-        first = (cur[cur["cross_planning"].notna()].sort_values("cross_planning")
+        cur = cur.assign(raw=cur["cross_planning"],
+                         cross_planning=_not_before(cur["cross_planning"], cur["last_x"]))
+        # The reason names the series that crosses first; of several already at the limit
+        # by the last test, the one whose trend got there first; then the lowest key (fits
+        # are sorted by it), whatever the order of the work.
+        first = (cur[cur["cross_planning"].notna()].sort_values(["cross_planning", "raw"],
+                                                                 kind="stable")
                  .groupby("unit_id").head(1).set_index("unit_id").reindex(soon.index))
         first_cyl = first["cylinder"].to_numpy(dtype=float)
         first_slope = first["slope"].to_numpy(dtype=float)

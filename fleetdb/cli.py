@@ -482,9 +482,12 @@ def board(as_of: Any, site: str | None, family: str | None, level: str | None,
 
 @cli.command()
 @as_of_option
+@click.option("--workers", type=click.IntRange(min=1), default=None,
+              help="Processes to assess in (default: one per core on a large fleet). The "
+                   "result is the same for any number.")
 @db_option
 @friendly_errors
-def refresh(as_of: Any, db: str | None) -> None:
+def refresh(as_of: Any, workers: int | None, db: str | None) -> None:
     """Recompute every unit's health and store the week's snapshot.
 
     \b
@@ -493,7 +496,8 @@ def refresh(as_of: Any, db: str | None) -> None:
     """
     from fleetdb import health
 
-    result = health.refresh_fleet(_engine(db), None if as_of is None else as_of.date())
+    result = health.refresh_fleet(_engine(db), None if as_of is None else as_of.date(),
+                                  workers=workers)
     counts = ", ".join(f"{k} {v}" for k, v in result["counts"].items())
     click.echo(f"Refreshed {result['units']} units for the week of {result['week_start']}: "
                f"{counts}")

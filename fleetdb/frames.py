@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numpy as np
 import pandas as pd
 from sqlalchemy import text
 from sqlalchemy.engine import Engine
@@ -52,17 +53,23 @@ def _sqlite_file(engine: Engine) -> str | None:
 ARROW_READ_MIN_ROWS = 200_000
 
 
-def _arrow_source(engine: Engine, whole_fleet: bool) -> str | None:
-    """The SQLite file to read through Arrow (see :mod:`fleetdb.arrowread`), or None.
+def _arrow_source(engine: Engine, whole_fleet: bool) -> tuple[str, int] | None:
+    """The SQLite file to read through Arrow (see :mod:`fleetdb.arrowread`) and the
+    highest test id at this moment, or None.
 
-    Only whole-fleet reads of a large SQLite file go that way.
+    Only whole-fleet reads of a large SQLite file go that way. The tests and the readings
+    are read at once by two processes, each in its own transaction: both stop at that
+    test id, so a test logged meanwhile is left out whole (tests and their readings are
+    written in one transaction).
     """
     path = _sqlite_file(engine)
     if path is not None and whole_fleet and arrowread.available():
         with engine.connect() as conn:
-            rows = conn.execute(text("SELECT COALESCE(MAX(id), 0) FROM reading")).scalar_one()
+            rows, last_test = conn.execute(text(
+                "SELECT (SELECT COALESCE(MAX(id), 0) FROM reading), "
+                "(SELECT COALESCE(MAX(id), 0) FROM test)")).one()
         if rows >= ARROW_READ_MIN_ROWS:
-            return path
+            return path, int(last_test)
     return None
 
 
@@ -129,13 +136,16 @@ def load(engine: Engine, unit_ids: list[int] | None = None,
                    + _unit_filter(unit_ids, "u.id")).set_index("unit_id")
     units["site_baro_kpa"] = atmosphere.pressure_kpa(units["elevation_m"].astype(float))
 
-    arrow_path = _arrow_source(engine, unit_ids is None)
+    arrow = _arrow_source(engine, unit_ids is None)
     readings_sql = ("SELECT r.test_id, r.kind, COALESCE(r.cylinder, 0) AS cylinder, "
                     "r.value_si AS value FROM reading r"
                     + (" JOIN test t ON t.id = r.test_id" + _unit_filter(unit_ids, "t.unit_id")
                        if unit_ids is not None else ""))
-    if arrow_path is not None:
-        tests, readings = arrowread.read_sqlite_many(arrow_path, [_tests_sql(True), readings_sql])
+    if arrow is not None:
+        path, last_test = arrow
+        tests, readings = arrowread.read_sqlite_many(
+            path, [f"{_tests_sql(True)} WHERE t.id <= {last_test}",
+                   f"{readings_sql} WHERE r.test_id <= {last_test}"], concurrent=True)
         tests = _restore_nulls(tests)
     else:
         tests = _query(engine, _tests_sql(False) + _unit_filter(unit_ids, "t.unit_id"))
@@ -170,3 +180,21 @@ def load(engine: Engine, unit_ids: list[int] | None = None,
     return Frames(families=families, units=units, tests=tests, readings=readings,
                   events=events.reset_index(drop=True))
 
+
+
+def of_families(fr: Frames, family_ids: list[int]) -> Frames:
+    """The frames of the units of some engine families (every family row is kept).
+
+    Everything the analysis computes for a unit depends only on its own family's units,
+    so assessing a fleet family by family gives the same result as assessing it whole.
+    """
+    unit_keep = fr.units["family_id"].isin(family_ids).to_numpy()
+    units = fr.units[unit_keep]
+    test_keep = fr.tests["family_id"].isin(family_ids).to_numpy()
+    tests = fr.tests[test_keep]
+    # Readings follow their test: look each one's test up by position, not by isin.
+    at = fr.tests.index.get_indexer(fr.readings["test_id"].to_numpy())
+    readings = fr.readings[(at >= 0) & test_keep[np.maximum(at, 0)]]
+    events = fr.events[fr.events["unit_id"].isin(units.index).to_numpy()]
+    return Frames(families=fr.families, units=units, tests=tests, readings=readings,
+                  events=events.reset_index(drop=True))

@@ -11,6 +11,11 @@ from __future__ import annotations
 
 import datetime as dt
 import json
+import multiprocessing as mp
+import os
+import threading
+import traceback
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -70,25 +75,45 @@ def _stored_family_params(conn: Connection, week: dt.date) -> pd.DataFrame | Non
     return frame.astype(float)
 
 
-def _store(conn: Connection, result: Assessment, week: dt.date, day: dt.date,
-           full: bool) -> None:
-    """Write the snapshot rows (upserting this week's rows of these units).
+#: Columns of a snapshot row, in the order :func:`_snapshot_rows` gives them.
+_SNAPSHOT_COLUMNS = ("unit_id", "week_start", "as_of", "level", "main_code", "main_text",
+                     "reasons_json", "last_test_id", "last_tested_at", "last_hours",
+                     "projected_hours", "projected_hours_early", "projected_date",
+                     "projected_date_early", "wear_kpa_per_1000h", "computed_at",
+                     "limits_version")
 
-    Snapshot rows are derived data, recomputed at will; tests and readings are never
-    deleted.
+
+def _reasons_json(rr: pd.DataFrame) -> dict[int, str]:
+    """Each unit's reasons as the JSON array stored in its snapshot row.
+
+    Built from whole columns, one reason a string, then joined per unit: the same text as
+    ``json.dumps`` of the list of reason objects (keys code, level, text, numbers, test_id).
     """
-    units = result.units
-    at = stamp(conn)
-    reasons: dict[int, list[dict[str, Any]]] = {}
-    rr = result.reasons
-    test_ids = [None if v is pd.NA else int(v)
+    if rr.empty:
+        return {}
+    encode = json.JSONEncoder(ensure_ascii=False).encode
+    test_ids = ["null" if v is pd.NA else str(int(v))
                 for v in pd.array(rr["test_id"].to_numpy(dtype=object), dtype="Int64").tolist()]
-    for uid, code, level, text_, numbers, test_id in zip(
-            rr["unit_id"].tolist(), rr["code"], rr["level"], rr["text"], rr["numbers"],
-            test_ids, strict=True):
-        reasons.setdefault(int(uid), []).append({
-            "code": code, "level": level, "text": text_, "numbers": numbers,
-            "test_id": test_id})
+    items = [f'{{"code": {encode(c)}, "level": {encode(lv)}, "text": {encode(t)}, '
+             f'"numbers": {encode(n)}, "test_id": {i}}}'
+             for c, lv, t, n, i in zip(rr["code"].tolist(), rr["level"].tolist(),
+                                       rr["text"].tolist(), rr["numbers"].tolist(), test_ids,
+                                       strict=True)]
+    unit = rr["unit_id"].to_numpy(np.int64)
+    order = np.argsort(unit, kind="stable")  # a unit's reasons keep their order
+    unit = unit[order]
+    starts = np.flatnonzero(np.r_[True, unit[1:] != unit[:-1]])
+    ends = np.r_[starts[1:], len(unit)]
+    ordered = [items[i] for i in order.tolist()]
+    return {int(unit[a]): "[" + ", ".join(ordered[a:b]) + "]"
+            for a, b in zip(starts.tolist(), ends.tolist(), strict=True)}
+
+
+def _snapshot_rows(units: pd.DataFrame, rr: pd.DataFrame, week: dt.date, day: dt.date,
+                   at: Any) -> list[tuple]:
+    """One ``health_snapshot`` row per unit (``_SNAPSHOT_COLUMNS``), plain Python values."""
+    reasons = _reasons_json(rr)
+
     def floats(col: str) -> list[float | None]:
         return [None if v != v else v for v in units[col].to_numpy(dtype=float).tolist()]
 
@@ -99,45 +124,43 @@ def _store(conn: Connection, result: Assessment, week: dt.date, day: dt.date,
         return [(v[:width] if width else v) if isinstance(v, str) else None
                 for v in units[col].to_numpy(dtype=object)]
 
+    unit_ids = [int(u) for u in units.index]
     last_ids = [None if v != v else int(v)
                 for v in units["last_test_id"].to_numpy(dtype=float).tolist()]
     last_at = [None if pd.isna(v) else v.to_pydatetime()
                for v in pd.to_datetime(units["last_tested_at"])]
-    columns = {
-        "unit_id": [int(u) for u in units.index], "level": units["level"].tolist(),
-        "main_code": texts("main_code"), "main_text": texts("main_text", 500),
-        "last_test_id": last_ids, "last_tested_at": last_at,
-        "last_hours": floats("last_hours"), "projected_hours": floats("projected_hours"),
-        "projected_hours_early": floats("projected_hours_early"),
-        "projected_date": dates("projected_date"),
-        "projected_date_early": dates("projected_date_early"),
-        "wear": floats("wear_kpa_per_1000h"),
-        "limits_version": [_int(v) for v in units["limits_version"]]
-        if "limits_version" in units else [None] * len(units)}
-    names = list(columns)
-    encode = json.JSONEncoder(ensure_ascii=False).encode
-    rows = [{**dict(zip(names, values, strict=True)), "week_start": week, "as_of": day,
-             "reasons_json": encode(reasons.get(values[0], [])),
-             "at": at}
-            for values in zip(*columns.values(), strict=True)]
-    if rows:
-        conn.execute(text(
-            "INSERT INTO health_snapshot (unit_id, week_start, as_of, level, main_code, "
-            "main_text, reasons_json, last_test_id, last_tested_at, last_hours, "
-            "projected_hours, projected_hours_early, projected_date, projected_date_early, "
-            "wear_kpa_per_1000h, computed_at, limits_version) VALUES (:unit_id, :week_start, "
-            ":as_of, :level, :main_code, :main_text, :reasons_json, :last_test_id, "
-            ":last_tested_at, :last_hours, :projected_hours, :projected_hours_early, "
-            ":projected_date, :projected_date_early, :wear, :at, :limits_version) "
-            # Replace this week's row of the unit; two refreshes at once both succeed.
-            "ON CONFLICT (unit_id, week_start) DO UPDATE SET " + ", ".join(
-                f"{c} = excluded.{c}" for c in (
-                    "as_of", "level", "main_code", "main_text", "reasons_json", "last_test_id",
-                    "last_tested_at", "last_hours", "projected_hours", "projected_hours_early",
-                    "projected_date", "projected_date_early", "wear_kpa_per_1000h",
-                    "computed_at", "limits_version"))), rows)
-    if full:
-        _store_family_params(conn, result.family_params, week, at)
+    versions = ([_int(v) for v in units["limits_version"]] if "limits_version" in units
+                else [None] * len(units))
+    n = len(units)
+    return list(zip(
+        unit_ids, [week] * n, [day] * n, units["level"].tolist(), texts("main_code"),
+        texts("main_text", 500), [reasons.get(u, "[]") for u in unit_ids], last_ids, last_at,
+        floats("last_hours"), floats("projected_hours"), floats("projected_hours_early"),
+        dates("projected_date"), dates("projected_date_early"), floats("wear_kpa_per_1000h"),
+        [at] * n, versions, strict=True))
+
+
+def _write_snapshot(conn: Connection, rows: list[tuple]) -> None:
+    """Upsert snapshot rows through the driver (this week's row of a unit is replaced;
+    two refreshes at once both succeed)."""
+    if not rows:
+        return
+    mark = "?" if conn.dialect.name == "sqlite" else "%s"
+    conn.exec_driver_sql(
+        f"INSERT INTO health_snapshot ({', '.join(_SNAPSHOT_COLUMNS)}) VALUES "
+        f"({', '.join([mark] * len(_SNAPSHOT_COLUMNS))}) ON CONFLICT (unit_id, week_start) "
+        "DO UPDATE SET " + ", ".join(f"{c} = excluded.{c}" for c in _SNAPSHOT_COLUMNS[2:]),
+        rows)
+
+
+def _store(conn: Connection, units: pd.DataFrame, rr: pd.DataFrame, week: dt.date,
+           day: dt.date) -> None:
+    """Write the snapshot rows of some units (upserting this week's rows).
+
+    Snapshot rows are derived data, recomputed at will; tests and readings are never
+    deleted.
+    """
+    _write_snapshot(conn, _snapshot_rows(units, rr, week, day, stamp(conn)))
 
 
 def _store_family_params(conn: Connection, params: pd.DataFrame, week: dt.date,
@@ -167,21 +190,142 @@ def _store_family_params(conn: Connection, params: pd.DataFrame, week: dt.date,
             ":at)"), rows)
 
 
-def refresh_fleet(engine: Engine, as_of: dt.date | None = None) -> dict[str, Any]:
+#: From this many readings a full refresh splits the fleet by engine family over the
+#: machine's cores (see :func:`_assess_split`).
+PARALLEL_MIN_READINGS = 300_000
+
+
+def _cores() -> int:
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # not on Linux
+        return os.cpu_count() or 1
+
+
+def _family_bins(fr: frames.Frames, n: int) -> list[list[int]]:
+    """The fleet's families in at most ``n`` bins of about equal work, heaviest first.
+
+    A family's work is counted as its tests times its cylinders (about its readings);
+    families are placed greedily, largest first, into the lightest bin.
+    """
+    tests = fr.tests["family_id"].value_counts()
+    cylinders = fr.families["cylinders"].astype(float)
+    present = np.unique(fr.units["family_id"].to_numpy())
+    weight = {int(f): float(tests.get(f, 0)) * float(cylinders.get(f, 1.0)) for f in present}
+    bins: list[list[int]] = [[] for _ in range(max(1, n))]
+    load = [0.0] * len(bins)
+    for fam in sorted(weight, key=lambda f: (-weight[f], f)):
+        lightest = load.index(min(load))
+        bins[lightest].append(fam)
+        load[lightest] += weight[fam]
+    return [sorted(b) for b in bins if b]
+
+
+@dataclass
+class _Part:
+    """What assessing some families gives a full refresh: snapshot rows to write, each
+    unit's level, and the families' pooled statistics."""
+
+    rows: list[tuple]
+    levels: pd.Series
+    family_params: pd.DataFrame
+    processes: int = 1
+
+
+def _assess_part(fr: frames.Frames, moment: pd.Timestamp, stamps: tuple) -> _Part:
+    """Assess some units and build their snapshot rows (``stamps``: week, day, time)."""
+    result = assess_mod.assess(fr, moment)
+    return _Part(rows=_snapshot_rows(result.units, result.reasons, *stamps),
+                 levels=result.units["level"], family_params=result.family_params)
+
+
+def _worker(send: Any, holder: list[frames.Frames], families: list[int],
+            moment: pd.Timestamp, stamps: tuple) -> None:
+    """A forked worker: assess some families of the inherited frames, send the result."""
+    try:
+        part = frames.of_families(holder.pop(), families)
+        send.send(("ok", _assess_part(part, moment, stamps)))
+    except BaseException:  # the parent re-raises it with the worker's traceback
+        send.send(("error", traceback.format_exc()))
+    finally:
+        send.close()
+
+
+def _assess_split(holder: list[frames.Frames], moment: pd.Timestamp, stamps: tuple,
+                  workers: int | None) -> _Part:
+    """Assess the fleet in ``holder`` (taken out of it, so its memory can be freed).
+
+    A large fleet is split by engine family over the machine's cores: every statistic
+    the analysis pools is pooled within a family, so the parts give exactly the
+    whole-fleet result. The read happens once, before the split; each worker is a fork
+    that inherits the frames without copying them, assesses its families, builds their
+    snapshot rows and sends them back. A fork is only taken from a single-threaded
+    process (the command line), never inside the dashboard's server; there, and on a
+    small fleet, the assessment runs in-process.
+    """
+    fr = holder[0]
+    if workers is None:
+        big = len(fr.readings) >= PARALLEL_MIN_READINGS
+        workers = _cores() if big else 1
+    can_fork = ("fork" in mp.get_all_start_methods() and threading.active_count() == 1)
+    bins = _family_bins(fr, workers) if workers > 1 and can_fork else []
+    if len(bins) < 2:
+        holder.clear()
+        part = _assess_part(fr, moment, stamps)
+        part.processes = 1
+        return part
+    ctx = mp.get_context("fork")
+    running = []
+    for families in bins[1:]:
+        receive, send = ctx.Pipe(duplex=False)
+        proc = ctx.Process(target=_worker, args=(send, holder, families, moment, stamps),
+                           daemon=True)
+        proc.start()
+        send.close()
+        running.append((proc, receive, families))
+    own = frames.of_families(fr, bins[0])
+    holder.clear()
+    del fr
+    parts = [_assess_part(own, moment, stamps)]
+    del own
+    for proc, receive, families in running:
+        try:
+            status, payload = receive.recv()
+        except EOFError:
+            status, payload = "error", f"the worker ended with exit code {proc.exitcode}"
+        proc.join()
+        if status != "ok":
+            raise RuntimeError(f"assessing engine families {families} failed:\n{payload}")
+        parts.append(payload)
+    return _Part(rows=sorted((row for p in parts for row in p.rows), key=lambda r: r[0]),
+                 levels=pd.concat([p.levels for p in parts]).sort_index(),
+                 family_params=pd.concat([p.family_params for p in parts]).sort_index(),
+                 processes=len(parts))
+
+
+def refresh_fleet(engine: Engine, as_of: dt.date | None = None, *,
+                  workers: int | None = None) -> dict[str, Any]:
     """Recompute every unit as of a day and store that week's snapshot.
 
     :param engine: the store.
     :param as_of: the day (default today); tests, events and voids after it are ignored.
-    :returns: counts per level and the week.
+    :param workers: processes to assess in (None: one per core on a large fleet, else
+        one; see :func:`_assess_split`). The result is the same for any number.
+    :returns: counts per level, the week and the number of processes that assessed.
     """
     day, moment = _as_of(as_of)
-    result = assess_mod.assess(frames.load(engine, as_of=moment), moment)
     week = week_start(day)
+    with engine.connect() as conn:
+        at = stamp(conn)
+    part = _assess_split([frames.load(engine, as_of=moment)], moment, (week, day, at),
+                         workers)
     with engine.begin() as conn:
-        _store(conn, result, week, day, full=True)
-    counts = result.units["level"].value_counts()
-    return {"week_start": week.isoformat(), "units": len(result.units),
-            "counts": {lvl: int(counts.get(lvl, 0)) for lvl in LEVELS}}
+        _write_snapshot(conn, part.rows)
+        _store_family_params(conn, part.family_params, week, at)
+    counts = part.levels.value_counts()
+    return {"week_start": week.isoformat(), "units": len(part.levels),
+            "counts": {lvl: int(counts.get(lvl, 0)) for lvl in LEVELS},
+            "processes": part.processes}
 
 
 def assess_units(engine: Engine, unit_ids: list[int], as_of: dt.date | None = None, *,
@@ -211,7 +355,7 @@ def refresh_units(engine: Engine, unit_ids: list[int], as_of: dt.date | None = N
         return
     result = assess_units(engine, unit_ids, day)
     with engine.begin() as conn:
-        _store(conn, result, week, day, full=False)
+        _store(conn, result.units, result.reasons, week, day)
 
 
 _LEVEL_ORDER = "CASE s.level " + " ".join(
