@@ -442,7 +442,7 @@ def fleet_wear(url: str, as_of: dt.date | None) -> FleetWear:
 @lru_cache(maxsize=2)
 def _fleet_wear(url: str, day: dt.date, version: tuple[int, int, int]) -> FleetWear:
     moment = pd.Timestamp(day) + pd.Timedelta(hours=23, minutes=59, seconds=59)
-    fr = frames.load(engine_for(url), as_of=moment)
+    fr = frames.load(engine_for(url), as_of=moment, details=False)
     result = assess.assess(fr, moment)
     units = fr.units[["fleet_no", "family", "site", "elevation_m"]]
     fits = result.fits

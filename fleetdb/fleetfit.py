@@ -116,6 +116,12 @@ def fit_fleet(
                                        "lower_bound", "drop"], index=data.index)
         return (empty, points) if return_points else empty
     codes, keys = _factorize(data[series])
+    # Work in (series, hours) order, ties in input order: the order step detection judges
+    # in, so that its two passes and Theil-Sen find the rows already sorted.
+    order = np.lexsort((data[x].to_numpy(float), codes))
+    if not (order[1:] > order[:-1]).all():
+        data, codes = data.iloc[order], codes[order]
+    del order
     g = len(keys)
     xa, ya = data[x].to_numpy(float), data[y].to_numpy(float)
     step_level = data[step_confidence].to_numpy(float) if step_confidence else confidence

@@ -82,24 +82,34 @@ _TEST_NULLABLE = {"t.battery_v": ("battery_v", "0.0"), "t.crank_rpm": ("crank_rp
 _TESTS_FROM = " FROM test t LEFT JOIN test_void v ON v.test_id = t.id"
 
 
-def _tests_sql(null_safe: bool) -> str:
+#: Columns of the tests frame that only the unit pages show (the analysis never reads them).
+DETAIL_COLUMNS = ("technician", "note", "source")
+
+
+def _tests_sql(null_safe: bool, details: bool = True) -> str:
     """The tests query; ``null_safe``: every nullable column as a stand-in plus a NULL flag.
 
     ADBC infers a column's type from its first rows and fails on a later value of another
     type, so the Arrow read never returns NULL; :func:`_restore_nulls` puts them back.
+    ``details``: with ``DETAIL_COLUMNS``.
     """
     columns = ["t.id AS test_id", "t.unit_id", "t.tested_at", "t.hours"]
     for expr, (name, stand_in) in _TEST_NULLABLE.items():
+        if not details and name in DETAIL_COLUMNS:
+            continue
         columns += ([f"COALESCE({expr}, {stand_in}) AS {name}", f"({expr} IS NULL) AS {name}__null"]
                     if null_safe else [f"{expr} AS {name}"])
-    columns.insert(columns.index("t.note AS note") + 1 if not null_safe
-                   else columns.index("(t.note IS NULL) AS note__null") + 1, "t.source")
+    if details:
+        columns.insert(columns.index("t.note AS note") + 1 if not null_safe
+                       else columns.index("(t.note IS NULL) AS note__null") + 1, "t.source")
     return "SELECT " + ", ".join(columns) + _TESTS_FROM
 
 
 def _restore_nulls(tests: pd.DataFrame) -> pd.DataFrame:
     """Undo :func:`_tests_sql`'s stand-ins: NULL where the flag says so."""
     for name, _ in _TEST_NULLABLE.values():
+        if f"{name}__null" not in tests:  # a column left out (``details``)
+            continue
         null = tests.pop(f"{name}__null").to_numpy(dtype=bool)
         column = tests[name]
         if null.all():  # as the plain read gives a column of nothing but NULLs
@@ -119,12 +129,14 @@ def _unit_filter(unit_ids: list[int] | None, column: str) -> str:
 
 
 def load(engine: Engine, unit_ids: list[int] | None = None,
-         as_of: pd.Timestamp | None = None) -> Frames:
+         as_of: pd.Timestamp | None = None, *, details: bool = True) -> Frames:
     """Read the frames for the whole fleet, or for some units.
 
     :param engine: the store.
     :param unit_ids: restrict to these units (None: all).
     :param as_of: ignore tests, events and voids after this moment (reproduce a past week).
+    :param details: the tests' ``DETAIL_COLUMNS`` too (False: left out, for the analysis
+        alone; a full refresh reads less).
     """
     families = _query(engine, "SELECT * FROM engine_family").rename(columns={"id": "family_id"})
     families = families.set_index("family_id").drop(columns=["created_at"])
@@ -144,11 +156,11 @@ def load(engine: Engine, unit_ids: list[int] | None = None,
     if arrow is not None:
         path, last_test = arrow
         tests, readings = arrowread.read_sqlite_many(
-            path, [f"{_tests_sql(True)} WHERE t.id <= {last_test}",
+            path, [f"{_tests_sql(True, details)} WHERE t.id <= {last_test}",
                    f"{readings_sql} WHERE r.test_id <= {last_test}"], concurrent=True)
         tests = _restore_nulls(tests)
     else:
-        tests = _query(engine, _tests_sql(False) + _unit_filter(unit_ids, "t.unit_id"))
+        tests = _query(engine, _tests_sql(False, details) + _unit_filter(unit_ids, "t.unit_id"))
         readings = _query(engine, readings_sql)
     tests["tested_at"] = pd.to_datetime(tests["tested_at"]).astype("datetime64[us]")
     if as_of is not None:

@@ -317,8 +317,8 @@ def refresh_fleet(engine: Engine, as_of: dt.date | None = None, *,
     week = week_start(day)
     with engine.connect() as conn:
         at = stamp(conn)
-    part = _assess_split([frames.load(engine, as_of=moment)], moment, (week, day, at),
-                         workers)
+    part = _assess_split([frames.load(engine, as_of=moment, details=False)], moment,
+                         (week, day, at), workers)
     with engine.begin() as conn:
         _write_snapshot(conn, part.rows)
         _store_family_params(conn, part.family_params, week, at)

@@ -525,6 +525,14 @@ def _judge_chunked(
     return {key: np.concatenate([part[key] for part in parts]) for key in parts[0]}
 
 
+def _in_series_order(codes: np.ndarray, x: np.ndarray) -> bool:
+    """Whether rows are sorted by series code, then by x within each series."""
+    if len(codes) < 2:
+        return True
+    dc = np.diff(codes)
+    return bool((dc >= 0).all() and ((dc > 0) | (np.diff(x) >= 0)).all())
+
+
 def detect_steps(
     series: ArrayLike, x: ArrayLike, y: ArrayLike, *, noise_sd: ArrayLike | None = None,
     noise_df: ArrayLike | None = None, confidence: float | ArrayLike = 0.95,
@@ -558,9 +566,12 @@ def detect_steps(
     df_all = np.full(n_rows, np.nan) if noise_df is None else np.asarray(noise_df, dtype=float)
     level_all = np.broadcast_to(np.asarray(confidence, dtype=float), (n_rows,))
     drop_all = np.broadcast_to(np.asarray(min_drop, dtype=float), (n_rows,))
-    order = np.lexsort((rows, xa, codes))
-    src = rows[order]
-    c, xs, ys, sd_sorted, df_sorted = codes[order], xa[order], ya[order], sd_all[src], df_all[src]
+    if _in_series_order(codes, xa):  # rows are increasing: ties already in input order
+        src, c, xs, ys = rows, codes, xa, ya
+    else:
+        order = np.lexsort((rows, xa, codes))
+        src, c, xs, ys = rows[order], codes[order], xa[order], ya[order]
+    sd_sorted, df_sorted = sd_all[src], df_all[src]
     t_sorted = 1 - (1 - level_all[src]) / 2
     drop_sorted = drop_all[src]
     n = len(c)
