@@ -36,46 +36,59 @@ def read_sqlite(path: str, sql: str) -> pd.DataFrame:
     :param sql: a SELECT statement.
     :raises RuntimeError: when the child fails (its message included).
     """
-    return read_sqlite_many(path, [sql])[0]
+    return read_sqlite_many(path, [[sql]])[0]
 
 
-def read_sqlite_many(path: str, queries: list[str], *,
-                     concurrent: bool = False) -> list[pd.DataFrame]:
-    """Run several queries in one child process (one start-up); a DataFrame each.
+def read_sqlite_many(path: str, frames: list[list[str]], *,
+                     categorical: tuple[str, ...] = ()) -> list[pd.DataFrame]:
+    """Read several DataFrames at once, each the rows of one or more queries.
+
+    Every query runs in a child process of its own, all at the same time (on a machine
+    with more than one core the reads overlap): split a long read into queries over
+    ranges of ids to spread it. The queries of one frame must give the same columns;
+    their rows are joined in order. Each child reads in its own transaction: queries
+    that must agree with each other under concurrent writers have to bound what they
+    read (for example by the highest id at the start).
 
     The queries must return no NULLs (see :func:`read_sqlite`); wrap a nullable column
     in ``COALESCE`` beside an ``IS NULL`` flag.
 
-    :param concurrent: one child per query, all running at once (on a machine with more
-        than one core, the reads overlap). Each child reads in its own transaction: the
-        queries must bound what they read (for example by the highest id at the start)
-        when they have to agree with each other under concurrent writers.
+    :param frames: per frame, its queries.
+    :param categorical: text columns to return as pandas categoricals (dictionary-encoded
+        while still in Arrow, so no Python string is made per row).
+    :raises RuntimeError: when a child fails (its message included).
     """
     import pyarrow as pa
+    import pyarrow.compute as pc
 
-    fd, out_path = tempfile.mkstemp(prefix="fleetdb-read-", suffix=".arrow")
+    fd, base = tempfile.mkstemp(prefix="fleetdb-read-", suffix=".arrow")
     os.close(fd)
-    outs = [f"{out_path}.{i}" for i in range(len(queries))]
+    queries = [sql for group in frames for sql in group]
+    outs = [f"{base}.{i}" for i in range(len(queries))]
     child = [sys.executable, "-m", "fleetdb._arrow_child", path]
     try:
-        if concurrent:
-            runs = [subprocess.Popen([*child, out, sql], stdout=subprocess.DEVNULL,
-                                     stderr=subprocess.PIPE, text=True)
-                    for sql, out in zip(queries, outs, strict=True)]
-            failed = [(run.communicate()[1], run.returncode) for run in runs]
-            errors = [err for err, code in failed if code != 0]
-        else:
-            done = subprocess.run([*child, out_path, *queries], capture_output=True, text=True,
-                                  check=False)
-            errors = [done.stderr] if done.returncode != 0 else []
+        runs = [subprocess.Popen([*child, out, sql], stdout=subprocess.DEVNULL,
+                                 stderr=subprocess.PIPE, text=True)
+                for sql, out in zip(queries, outs, strict=True)]
+        errors = [err for err, code in ((run.communicate()[1], run.returncode) for run in runs)
+                  if code != 0]
         if errors:
             raise RuntimeError(f"Arrow read of {path} failed: {errors[0].strip()[-500:]}")
-        frames = []
-        for out in outs:
-            with pa.memory_map(out, "r") as source:
-                frames.append(pa.ipc.open_file(source).read_all().to_pandas())
-        return frames
+        result, at = [], 0
+        for group in frames:
+            tables = []
+            for out in outs[at:at + len(group)]:
+                with pa.memory_map(out, "r") as source:
+                    tables.append(pa.ipc.open_file(source).read_all())
+            at += len(group)
+            table = pa.concat_tables(tables) if len(tables) > 1 else tables[0]
+            for name in categorical:
+                if name in table.column_names:
+                    table = table.set_column(table.column_names.index(name), name,
+                                             pc.dictionary_encode(table[name]))
+            result.append(table.to_pandas())
+        return result
     finally:
-        for leftover in (out_path, *outs):
+        for leftover in (base, *outs):
             if os.path.exists(leftover):
                 os.unlink(leftover)

@@ -178,32 +178,32 @@ def _series_points(fr: Frames, res: checks.CheckResult, as_of: pd.Timestamp) -> 
     at = tests.index.get_indexer(rd["test_id"].to_numpy())
     if (at < 0).any():  # readings of tests not given (frames.load never has them)
         rd, at = rd[at >= 0], at[at >= 0]
-    rd_test = rd["test_id"].to_numpy()
 
     def of_test(col: str, dtype: Any = None) -> np.ndarray:
         return tests[col].to_numpy(dtype=dtype)[at]
 
     value = rd["value"].to_numpy()
     trusted = res.tests["trustworthy"].reindex(tests.index).fillna(False).to_numpy(dtype=bool)
-    pts = pd.DataFrame({
-        "test_id": rd_test, "unit_id": of_test("unit_id"),
-        "family_id": of_test("family_id"), "tested_at": of_test("tested_at"),
-        "hours": of_test("hours"), "cylinder": rd["cylinder"].to_numpy(dtype=float,
-                                                                        na_value=np.nan),
-        "value_kpa": value, "value_sl": value * (101.325 / of_test("baro_kpa")),
-        "voided": of_test("voided", bool), "trustworthy": trusted[at]})
+    # The spread series' points: the lowest/highest ratio of each test (ratio families).
     ratio_fams = fams.index[fams["spread_rule"] == "ratio"]
-    summ = res.tests.join(tests[["unit_id", "family_id", "tested_at", "hours", "voided"]])
-    summ = summ[summ["dry_ratio"].notna() & summ["family_id"].isin(ratio_fams)]
-    spread = pd.DataFrame({
-        "test_id": summ.index.to_numpy(), "unit_id": summ["unit_id"].to_numpy(),
-        "family_id": summ["family_id"].to_numpy(), "tested_at": summ["tested_at"].to_numpy(),
-        "hours": summ["hours"].to_numpy(), "cylinder": float(SPREAD_CYLINDER),
-        "value_kpa": np.nan, "value_sl": summ["dry_ratio"].to_numpy(float),
-        "voided": summ["voided"].to_numpy(dtype=bool),
-        "trustworthy": summ["trustworthy"].to_numpy(dtype=bool)})
-    pts = pd.concat([pts, spread], ignore_index=True)
-    del spread, summ
+    ratio = res.tests["dry_ratio"].reindex(tests.index).to_numpy(dtype=float)
+    spread = np.flatnonzero(~np.isnan(ratio)
+                            & tests["family_id"].isin(ratio_fams).to_numpy())
+    # One frame built from whole columns (readings first, then the spread points).
+    both = np.concatenate([at, spread])
+
+    def col(name: str, dtype: Any = None) -> np.ndarray:
+        return tests[name].to_numpy(dtype=dtype)[both]
+
+    pts = pd.DataFrame({
+        "test_id": tests.index.to_numpy()[both], "unit_id": col("unit_id"),
+        "family_id": col("family_id"), "tested_at": col("tested_at"), "hours": col("hours"),
+        "cylinder": np.concatenate([rd["cylinder"].to_numpy(dtype=float, na_value=np.nan),
+                                    np.full(len(spread), float(SPREAD_CYLINDER))]),
+        "value_kpa": np.concatenate([value, np.full(len(spread), np.nan)]),
+        "value_sl": np.concatenate([value * (101.325 / of_test("baro_kpa")), ratio[spread]]),
+        "voided": col("voided", bool), "trustworthy": trusted[both]})
+    del spread, ratio
     pts["in_fit"] = pts["trustworthy"] & ~pts["voided"]
     cyl_count = fams["cylinders"].reindex(fr.units["family_id"]).set_axis(fr.units.index)
     pts["event_seg"] = _event_segments(pts, fr.events, cyl_count)

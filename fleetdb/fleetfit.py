@@ -126,10 +126,18 @@ def fit_fleet(
     xa, ya = data[x].to_numpy(float), data[y].to_numpy(float)
     step_level = data[step_confidence].to_numpy(float) if step_confidence else confidence
     step_drop = data[min_drop].to_numpy(float) if min_drop else 0.0
-    per_series = data.groupby(codes).agg(family=(group, "first"), families=(group, "nunique"),
-                                         limit=(limit, "first"), limits=(limit, "nunique"))
-    if (per_series["families"] > 1).any() or (per_series["limits"] > 1).any():
+    # Rows are grouped by series now: each series' group and limit are its first row's,
+    # and must be the same on every row of it (NaN limits count as equal).
+    first_row = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]])
+    group_values, limit_values = data[group].to_numpy(), data[limit].to_numpy(float)
+    series_limit = limit_values[first_row][codes]
+    if not ((group_values == group_values[first_row][codes]).all()
+            and ((limit_values == series_limit)
+                 | (np.isnan(limit_values) & np.isnan(series_limit))).all()):
         raise ValueError("group and limit must be constant within each series")
+    per_series = pd.DataFrame({"family": group_values[first_row],
+                               "limit": limit_values[first_row]})
+    del group_values, limit_values, series_limit
     family, family_keys = _factorize(per_series["family"].to_numpy())
     external = None if family_params is None else family_params.reindex(family_keys).set_axis(
         np.arange(len(family_keys)))

@@ -53,23 +53,29 @@ def _sqlite_file(engine: Engine) -> str | None:
 ARROW_READ_MIN_ROWS = 200_000
 
 
-def _arrow_source(engine: Engine, whole_fleet: bool) -> tuple[str, int] | None:
-    """The SQLite file to read through Arrow (see :mod:`fleetdb.arrowread`) and the
-    highest test id at this moment, or None.
+@dataclass
+class _ArrowRead:
+    path: str
+    last_test: int  # the highest test id when the read began
+    last_reading: int  # the highest reading id then
+
+
+def _arrow_source(engine: Engine, whole_fleet: bool) -> _ArrowRead | None:
+    """What to read through Arrow (see :mod:`fleetdb.arrowread`), or None.
 
     Only whole-fleet reads of a large SQLite file go that way. The tests and the readings
-    are read at once by two processes, each in its own transaction: both stop at that
-    test id, so a test logged meanwhile is left out whole (tests and their readings are
-    written in one transaction).
+    are read at once by several processes, each in its own transaction: all stop at the
+    highest test id of this moment, so a test logged meanwhile is left out whole (tests
+    and their readings are written in one transaction).
     """
     path = _sqlite_file(engine)
     if path is not None and whole_fleet and arrowread.available():
         with engine.connect() as conn:
-            rows, last_test = conn.execute(text(
+            last_reading, last_test = conn.execute(text(
                 "SELECT (SELECT COALESCE(MAX(id), 0) FROM reading), "
                 "(SELECT COALESCE(MAX(id), 0) FROM test)")).one()
-        if rows >= ARROW_READ_MIN_ROWS:
-            return path, int(last_test)
+        if last_reading >= ARROW_READ_MIN_ROWS:
+            return _ArrowRead(path, int(last_test), int(last_reading))
     return None
 
 
@@ -121,6 +127,17 @@ def _restore_nulls(tests: pd.DataFrame) -> pd.DataFrame:
     return tests
 
 
+def _in_unit_time_order(tests: pd.DataFrame) -> bool:
+    """Whether the tests are already sorted by unit, then time (as a store usually gives
+    them), so that sorting can be skipped."""
+    unit = tests["unit_id"].to_numpy()
+    at = tests["tested_at"].to_numpy()
+    if len(unit) < 2:
+        return True
+    du = np.diff(unit)
+    return bool((du >= 0).all() and ((du > 0) | (at[1:] >= at[:-1])).all())
+
+
 def _unit_filter(unit_ids: list[int] | None, column: str) -> str:
     if unit_ids is None:
         return ""
@@ -154,20 +171,26 @@ def load(engine: Engine, unit_ids: list[int] | None = None,
                     + (" JOIN test t ON t.id = r.test_id" + _unit_filter(unit_ids, "t.unit_id")
                        if unit_ids is not None else ""))
     if arrow is not None:
-        path, last_test = arrow
-        tests, readings = arrowread.read_sqlite_many(
-            path, [f"{_tests_sql(True, details)} WHERE t.id <= {last_test}",
-                   f"{readings_sql} WHERE r.test_id <= {last_test}"], concurrent=True)
+        # Three processes: the tests, and the readings in two halves by id.
+        half, last = arrow.last_reading // 2, arrow.last_test
+        tests, readings = arrowread.read_sqlite_many(arrow.path, [
+            [f"{_tests_sql(True, details)} WHERE t.id <= {last}"],
+            [f"{readings_sql} WHERE r.id <= {half} AND r.test_id <= {last}",
+             f"{readings_sql} WHERE r.id > {half} AND r.test_id <= {last}"]],
+            categorical=("kind",))
         tests = _restore_nulls(tests)
     else:
         tests = _query(engine, _tests_sql(False, details) + _unit_filter(unit_ids, "t.unit_id"))
         readings = _query(engine, readings_sql)
-    tests["tested_at"] = pd.to_datetime(tests["tested_at"]).astype("datetime64[us]")
+    tests["tested_at"] = pd.to_datetime(tests["tested_at"], format="ISO8601").astype(
+        "datetime64[us]")
     if as_of is not None:
         tests = tests[tests["tested_at"] <= as_of]
         voided_at = pd.to_datetime(tests["voided_at"], utc=True).dt.tz_convert(None)
         tests.loc[voided_at > as_of, "void_reason"] = None
-    tests = tests.set_index("test_id").sort_values(["unit_id", "tested_at"])
+    tests = tests.set_index("test_id")
+    if not _in_unit_time_order(tests):
+        tests = tests.sort_values(["unit_id", "tested_at"])
     tests["family_id"] = units["family_id"].reindex(tests["unit_id"]).to_numpy()
     tests["baro_measured"] = tests["baro_kpa"].notna()
     tests["baro_kpa"] = tests["baro_kpa"].astype(float).fillna(
@@ -178,7 +201,8 @@ def load(engine: Engine, unit_ids: list[int] | None = None,
         tests[col] = tests[col].astype(float)
 
     readings = readings[readings["test_id"].isin(tests.index)]
-    readings["kind"] = readings["kind"].astype("category")
+    kinds = readings["kind"].astype("category")  # categories sorted, however it was read
+    readings["kind"] = kinds.cat.reorder_categories(sorted(kinds.cat.categories))
     readings["cylinder"] = readings["cylinder"].astype("Int64").replace(0, pd.NA)
     readings["value"] = readings["value"].astype(float)
 
