@@ -35,7 +35,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy import special
 
 from fleetdb import checks, fleetfit
 from fleetdb.defaults import DEFAULTS
@@ -536,7 +536,7 @@ def _reasons(fr: Frames, res: checks.CheckResult, pts: pd.DataFrame, fits: pd.Da
     cyl_fits = fits[fits["current"] & (fits["cylinder"] != SPREAD_CYLINDER)]
     k = cyl_fits.groupby("unit_id")["cylinder"].transform("size").to_numpy(float)
     fast = cyl_fits[cyl_fits["family_z"].to_numpy(float)
-                    < -stats.norm.ppf(1 - FAMILY_ALPHA / k)]
+                    < -special.ndtri(1 - FAMILY_ALPHA / k)]
     if len(fast):
         g = fast.groupby("unit_id").agg(cyls=("cylinder", list), slope=("slope", "min"),
                                         mu=("family_mu", "first"))

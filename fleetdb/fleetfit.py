@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy import special
 
 from fleetdb.trend import (
     FLEET_COLUMNS,
@@ -171,7 +171,7 @@ def fit_fleet(
         se_guarded = np.where(fit["n"] < short_n, np.fmax(ols_se, se_family), ols_se)
         pool["family_z"] = (fit["slope"] - pool["family_mu"].to_numpy()) / np.sqrt(
             se_guarded**2 + pool["family_tau2"].to_numpy())
-    faster = (pool["family_z"] < -stats.norm.ppf(confidence)).to_numpy()
+    faster = (pool["family_z"] < -special.ndtri(confidence)).to_numpy()
 
     short, has_ols = fit["n"] < short_n, np.isfinite(fit["slope"])
     has_pool = np.isfinite(pool["family_tau2"] + pool["pooled_slope"]).to_numpy()

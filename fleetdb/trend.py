@@ -47,7 +47,7 @@ from collections.abc import Sequence
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy import special
 
 __all__ = [
     "FLEET_COLUMNS", "crossing_hours", "dersimonian_laird", "detect_steps",
@@ -97,6 +97,15 @@ def _prepare(
     return codes[rows], keys, xa[rows], ya[rows], rows
 
 
+def _t_quantile(q: np.ndarray, df: np.ndarray) -> np.ndarray:
+    """Student's t quantile: ``scipy.stats.t.ppf``'s own kernel, ``scipy.special.stdtrit``,
+    without the distribution machinery (whose import is most of a command's start-up)."""
+    with np.errstate(invalid="ignore"):
+        out = np.asarray(special.stdtrit(df, q), dtype=float)
+        out[(q == 0) & (df > 0)] = -np.inf  # stdtrit gives +inf there; t.ppf gives -inf
+    return out
+
+
 def t_ppf(q: ArrayLike | float, df: ArrayLike | float) -> np.ndarray:
     """``scipy.stats.t.ppf`` elementwise, computed once per distinct (q, df) pair.
 
@@ -106,14 +115,12 @@ def t_ppf(q: ArrayLike | float, df: ArrayLike | float) -> np.ndarray:
     """
     q_arr, df_arr = np.broadcast_arrays(np.asarray(q, dtype=float), np.asarray(df, dtype=float))
     if q_arr.size < 64:
-        return np.asarray(stats.t.ppf(q_arr, df_arr), dtype=float)
+        return _t_quantile(q_arr, df_arr)
     q_codes, q_uniq = pd.factorize(q_arr.ravel(), use_na_sentinel=False)
     df_codes, df_uniq = pd.factorize(df_arr.ravel(), use_na_sentinel=False)
     pair_codes, pairs = pd.factorize(q_codes.astype(np.int64) * len(df_uniq) + df_codes)
-    with np.errstate(invalid="ignore"):
-        values = np.asarray(stats.t.ppf(np.asarray(q_uniq, dtype=float)[pairs // len(df_uniq)],
-                                        np.asarray(df_uniq, dtype=float)[pairs % len(df_uniq)]),
-                            dtype=float)
+    values = _t_quantile(np.asarray(q_uniq, dtype=float)[pairs // len(df_uniq)],
+                         np.asarray(df_uniq, dtype=float)[pairs % len(df_uniq)])
     return values[pair_codes].reshape(q_arr.shape)
 
 
@@ -272,7 +279,7 @@ def fit_theil_sen(
     starts = np.cumsum(n) - n
     out = {k: np.full(g, np.nan) for k in ("slope", "intercept", "low_slope", "high_slope")}
     out["n_pairs"] = np.zeros(g, dtype=int)
-    z = stats.norm.ppf(1 - (1 - confidence) / 2)
+    z = special.ndtri(1 - (1 - confidence) / 2)
     for size in np.unique(n[n > 0]):
         groups = np.flatnonzero(n == size)
         per_block = max(1, _PAIR_BUDGET // max(size * (size - 1) // 2, 1))

@@ -52,6 +52,23 @@ def random_fleet(seed: int, n_series: int, max_n: int, ties: bool = False) -> pd
     return pd.DataFrame({"series": key[shuffle], "x": x[shuffle], "y": y[shuffle]})
 
 
+# --------------------------------------------------------------------------- quantiles
+
+
+@pytest.mark.parametrize("size", [8, 4_000])  # the direct path and the one-per-pair path
+def test_t_quantiles_equal_scipy_stats(size: int) -> None:
+    # Reference: scipy.stats.t.ppf and scipy.stats.norm.ppf (scipy 1.17.1), bit for bit,
+    # edges included (q of 0 and 1, df of 0, negative, infinite or missing).
+    rng = np.random.default_rng(5)
+    q = rng.choice([0.0, 1e-9, 0.025, 0.5, 0.95, 0.975, 0.9999, 1.0, np.nan], size)
+    df = rng.choice([-1.0, 0.0, 0.5, 1.0, 2.0, 3.0, 17.0, 1e6, np.inf, np.nan], size)
+    np.testing.assert_array_equal(trend.t_ppf(q, df), stats.t.ppf(q, df))
+    np.testing.assert_array_equal(trend._t_quantile(np.array(0.0), np.array(4.0)),
+                                  stats.t.ppf(0.0, 4.0))
+    p = np.array([0.0, 1e-9, 0.05, 0.5, 0.95, 1.0, np.nan])
+    np.testing.assert_array_equal(trend.special.ndtri(p), stats.norm.ppf(p))
+
+
 # --------------------------------------------------------------------------- OLS vs NIST
 
 

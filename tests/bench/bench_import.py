@@ -76,6 +76,10 @@ class Measured:
     returncode: int
     killed_over_rss: bool = False
     stderr: str = ""
+    #: With ``tree=True``: the highest sum over the child and its descendants, sampled.
+    tree_peak_pss_bytes: int | None = None
+    tree_peak_rss_bytes: int | None = None
+    tree_max_processes: int | None = None
 
 
 @dataclass
@@ -106,12 +110,22 @@ class Variant:
 
 # -- child processes ------------------------------------------------------------------------
 
-def run_measured(cmd: list[str], *, rss_limit_bytes: int | None = None) -> Measured:
+def run_measured(cmd: list[str], *, rss_limit_bytes: int | None = None,
+                 tree: bool = False) -> Measured:
     """Run a command to completion; measure its wall time, CPU time and peak memory.
+
+    CPU time counts the child and every descendant it waited for. The kernel's peak
+    resident set (``ru_maxrss``) is that of the largest single process, not a sum: a
+    command that works in several processes at once needs ``tree``.
 
     :param cmd: the command and its arguments.
     :param rss_limit_bytes: kill the child if its resident memory goes beyond this (the
         machine is shared: a runaway import must not take it down).
+    :param tree: also sample, every 0.2 s, the memory of the child and all its
+        descendants together: the sum of their PSS (proportional set size: a page shared
+        by n processes, such as a forked worker's inherited data, counts 1/n in each, so
+        the sum is the memory really used) and of their RSS (which counts shared pages
+        in every process). A sample can miss a peak shorter than the interval.
     """
     with tempfile.TemporaryFile("w+") as err:
         start = time.perf_counter()
@@ -120,14 +134,57 @@ def run_measured(cmd: list[str], *, rss_limit_bytes: int | None = None) -> Measu
         if rss_limit_bytes:
             threading.Thread(target=_rss_guard, args=(proc.pid, rss_limit_bytes, killed, done),
                              daemon=True).start()
+        peaks = {"pss": 0, "rss": 0, "processes": 0}
+        sampler = None
+        if tree:
+            sampler = threading.Thread(target=_tree_sampler, args=(proc.pid, peaks, done),
+                                       daemon=True)
+            sampler.start()
         _, status, usage = os.wait4(proc.pid, 0)
         seconds = time.perf_counter() - start
         done.set()
+        if sampler is not None:
+            sampler.join()
         proc.returncode = os.waitstatus_to_exitcode(status)
         err.seek(0)
         # ru_maxrss is in kilobytes on Linux.
         return Measured(seconds, usage.ru_utime + usage.ru_stime, usage.ru_maxrss * 1024,
-                        proc.returncode, killed.is_set(), err.read()[-4000:])
+                        proc.returncode, killed.is_set(), err.read()[-4000:],
+                        peaks["pss"] or None if tree else None,
+                        peaks["rss"] or None if tree else None,
+                        peaks["processes"] or None if tree else None)
+
+
+def _descendants(pid: int) -> list[int]:
+    """``pid`` and every process below it (from /proc/PID/task/*/children)."""
+    found, queue = [], [pid]
+    while queue:
+        current = queue.pop()
+        found.append(current)
+        for task in Path(f"/proc/{current}/task").glob("*/children"):
+            try:
+                queue += [int(c) for c in task.read_text().split()]
+            except OSError:
+                continue
+    return found
+
+
+def _tree_sampler(pid: int, peaks: dict[str, int], done: threading.Event) -> None:
+    """Record the highest PSS and RSS sums of the process tree under ``pid``."""
+    while not done.wait(0.2):
+        pss = rss = count = 0
+        for member in _descendants(pid):
+            try:
+                for line in Path(f"/proc/{member}/smaps_rollup").read_text().splitlines():
+                    if line.startswith("Pss:"):
+                        pss += int(line.split()[1]) * 1024
+                    elif line.startswith("Rss:"):
+                        rss += int(line.split()[1]) * 1024
+                count += 1
+            except (OSError, ValueError):
+                continue
+        peaks["pss"], peaks["rss"] = max(peaks["pss"], pss), max(peaks["rss"], rss)
+        peaks["processes"] = max(peaks["processes"], count)
 
 
 def _rss_guard(pid: int, limit: int, killed: threading.Event, done: threading.Event) -> None:
