@@ -43,4 +43,9 @@ def test_load_through_arrow_equals_plain(sqlite_url: str, monkeypatch) -> None: 
     assert plain.tests["baro_measured"].any() and not plain.tests["baro_measured"].all()
     assert plain.tests["note"].isna().any()
     pd.testing.assert_frame_equal(fast.tests, plain.tests)
+    # Without the detail columns (what a full refresh reads): the rest is the same.
+    lean = frames.load(engine, details=False)
+    assert not set(frames.DETAIL_COLUMNS) & set(lean.tests.columns)
+    pd.testing.assert_frame_equal(lean.tests, plain.tests.drop(columns=list(frames.DETAIL_COLUMNS)))
+    pd.testing.assert_frame_equal(lean.readings, fast.readings)
     engine.dispose()
