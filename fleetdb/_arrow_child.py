@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import sys
 
-
 #: Rows per Arrow batch (the driver gives 1,024 by default: many small batches to write).
 BATCH_ROWS = 65_536
 
