@@ -148,14 +148,26 @@ def _hours_per_week(fr: Frames, as_of: pd.Timestamp) -> pd.Series:
     return pd.Series(own, index=fr.units.index).fillna(declared).where(lambda s: s > 0)
 
 
+_PLAIN = (str, int, bool, type(None))
+
+
 def _jsonable(value: Any) -> Any:
     kind = type(value)  # the common exact types first: this runs per number of every reason
     if kind is float or kind is np.float64:
         return round(float(value), 4) if math.isfinite(value) else None
-    if kind is str or kind is int or kind is bool or value is None:
+    if kind in _PLAIN:
         return value
-    if kind is dict:
-        return {k: _jsonable(v) for k, v in value.items()}
+    if kind is dict:  # a reason's numbers: plain values inline, no call per value
+        out = {}
+        for k, v in value.items():
+            vk = type(v)
+            if vk is float or vk is np.float64:
+                out[k] = round(float(v), 4) if math.isfinite(v) else None
+            elif vk in _PLAIN:
+                out[k] = v
+            else:
+                out[k] = _jsonable(v)
+        return out
     if isinstance(value, dict):
         return {k: _jsonable(v) for k, v in value.items()}
     if isinstance(value, (list, tuple, np.ndarray)):
@@ -327,6 +339,22 @@ def assess(fr: Frames, as_of: pd.Timestamp, *, horizon_weeks: int = HORIZON_WEEK
                       fits=fits, family_params=params)
 
 
+def _latest(tests: pd.DataFrame, keep: np.ndarray) -> pd.DataFrame:
+    """Of the tests where ``keep`` holds, each unit's latest (rows of ``tests``).
+
+    ``frames.load`` gives the tests in unit and time order, so the latest of a unit is
+    the last kept row of its run: found without sorting (a unit has one test a moment).
+    """
+    unit = tests["unit_id"].to_numpy()
+    at = tests["tested_at"].to_numpy()
+    rows = np.flatnonzero(keep)
+    du = np.diff(unit)
+    if len(unit) > 1 and not ((du >= 0).all() and ((du > 0) | (at[1:] >= at[:-1])).all()):
+        return tests[keep].sort_values("tested_at").groupby("unit_id").tail(1)
+    kept_unit = unit[rows]
+    return tests.iloc[rows[np.r_[kept_unit[1:] != kept_unit[:-1], True]] if len(rows) else rows]
+
+
 def _not_before(cross: pd.Series, last_x: pd.Series) -> np.ndarray:
     """Crossing hours, moved up to the last test where the trend is already past the limit."""
     c = cross.to_numpy(float)
@@ -336,8 +364,7 @@ def _not_before(cross: pd.Series, last_x: pd.Series) -> np.ndarray:
 def _unit_table(fr: Frames, as_of: pd.Timestamp, fits: pd.DataFrame) -> pd.DataFrame:
     """Per unit: last test, utilisation and the earliest projected crossing (hours, date)."""
     units = fr.units[["fleet_no", "site", "family", "family_id"]].copy()
-    valid = fr.tests[~fr.tests["voided"]].sort_values("tested_at")
-    last = valid.groupby("unit_id").tail(1)
+    last = _latest(fr.tests, ~fr.tests["voided"].to_numpy(bool))
     units["last_test_id"] = pd.Series(last.index, index=last["unit_id"]).reindex(units.index)
     units["last_tested_at"] = last.set_index("unit_id")["tested_at"].reindex(units.index)
     units["last_hours"] = last.set_index("unit_id")["hours"].reindex(units.index)
@@ -384,8 +411,10 @@ def _reason_rows(unit_ids: Any, code: str, level: str, texts: Any, numbers: Any,
                          "test_id": many(test_ids)})
 
 
-def _fmt_date(value: Any) -> str:
-    return "unknown" if pd.isna(value) else pd.Timestamp(value).date().isoformat()
+def _fmt_dates(values: pd.Series) -> list[str]:
+    """Each day as YYYY-MM-DD, ``unknown`` where missing."""
+    days = pd.to_datetime(values)
+    return days.dt.strftime("%Y-%m-%d").where(days.notna(), "unknown").tolist()
 
 
 def _judged_tests(fr: Frames, summ: pd.DataFrame) -> pd.Series:
@@ -398,7 +427,7 @@ def _judged_tests(fr: Frames, summ: pd.DataFrame) -> pd.Series:
                  & ~tests["voided"].to_numpy(bool)
                  & summ["dry_min_kpa"].reindex(tests.index).notna().to_numpy()
                  & ~(tests["tested_at"].to_numpy() < last_reset))
-    judged = tests[judgeable].sort_values("tested_at").groupby("unit_id").tail(1)
+    judged = _latest(tests, judgeable)
     return pd.Series(judged.index, index=judged["unit_id"])
 
 
@@ -408,9 +437,8 @@ def _check(fr: Frames, all_findings: bool) -> checks.CheckResult:
         return checks.check_tests(fr.families, fr.tests, fr.readings)
     quiet = checks.check_tests(fr.families, fr.tests, fr.readings,
                                findings_for=np.zeros(len(fr.tests), dtype=bool))
-    valid = fr.tests[~fr.tests["voided"]].sort_values("tested_at")
     wanted = np.union1d(_judged_tests(fr, quiet.tests).to_numpy(),
-                        valid.groupby("unit_id").tail(1).index.to_numpy())
+                        _latest(fr.tests, ~fr.tests["voided"].to_numpy(bool)).index.to_numpy())
     some = checks.check_tests(fr.families, fr.tests.loc[wanted],
                               fr.readings[fr.readings["test_id"].isin(wanted)])
     return checks.CheckResult(tests=quiet.tests, findings=some.findings)
@@ -457,8 +485,8 @@ def _reasons(fr: Frames, res: checks.CheckResult, pts: pd.DataFrame, fits: pd.Da
     if len(overdue):
         parts.append(_reason_rows(
             overdue.index.to_numpy(), "test_overdue", "retest",
-            [f"Last tested {_fmt_date(t)}, {d} days ago; the family's interval is {i} days."
-             for t, d, i in zip(overdue["last_tested_at"], age[overdue.index],
+            [f"Last tested {t}, {d} days ago; the family's interval is {i} days."
+             for t, d, i in zip(_fmt_dates(overdue["last_tested_at"]), age[overdue.index],
                                 overdue["interval_days"], strict=True)],
             [{"days_since_test": int(d), "interval_days": int(i)}
              for d, i in zip(age[overdue.index], overdue["interval_days"], strict=True)],
@@ -505,8 +533,8 @@ def _reasons(fr: Frames, res: checks.CheckResult, pts: pd.DataFrame, fits: pd.Da
         point_h = soon["projected_hours"].to_numpy(dtype=float)
         last_h = soon["last_hours"].to_numpy(dtype=float)
         per_week = soon["hours_per_week"].to_numpy(dtype=float)
-        early_d = [_fmt_date(d) for d in soon["projected_date_early"]]
-        point_d = [_fmt_date(d) for d in soon["projected_date"]]
+        early_d = _fmt_dates(soon["projected_date_early"])
+        point_d = _fmt_dates(soon["projected_date"])
         texts, numbers = [], []
         for i in range(len(soon)):
             cyl = int(first_cyl[i])

@@ -94,7 +94,8 @@ def _reasons_json(rr: pd.DataFrame) -> dict[int, str]:
     encode = json.JSONEncoder(ensure_ascii=False).encode
     test_ids = ["null" if v is pd.NA else str(int(v))
                 for v in pd.array(rr["test_id"].to_numpy(dtype=object), dtype="Int64").tolist()]
-    items = [f'{{"code": {encode(c)}, "level": {encode(lv)}, "text": {encode(t)}, '
+    # Codes and levels are plain identifiers (checks.CODES, LEVELS): no escaping to do.
+    items = [f'{{"code": "{c}", "level": "{lv}", "text": {encode(t)}, '
              f'"numbers": {encode(n)}, "test_id": {i}}}'
              for c, lv, t, n, i in zip(rr["code"].tolist(), rr["level"].tolist(),
                                        rr["text"].tolist(), rr["numbers"].tolist(), test_ids,
