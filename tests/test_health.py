@@ -11,7 +11,7 @@ import pytest
 from sqlalchemy.engine import Engine
 
 import demo_fleet
-from fleetdb import assess, db, frames, health, logbook
+from fleetdb import assess, db, frames, health, ingest, logbook
 from tests.conftest import DEMO_AS_OF, copy_store
 
 AS_OF = DEMO_AS_OF
@@ -228,3 +228,19 @@ def test_family_bins_balance_the_work(demo: Engine) -> None:
     assert set(split.tests["unit_id"]) <= set(split.units.index)
     assert set(split.readings["test_id"]) == set(split.tests.index) & set(fr.readings["test_id"])
     assert set(split.events["unit_id"]) <= set(split.units.index)
+
+
+def test_split_refresh_on_each_engine(engine: Engine, monkeypatch) -> None:  # noqa: ANN001
+    # The same on SQLite and PostgreSQL: the workers never touch the store (the parent
+    # reads before forking and writes after), so the rows stored are the same.
+    from tests.conftest import DATA
+
+    monkeypatch.setattr(health.threading, "active_count", lambda: 1)
+    ingest.import_files(engine, [DATA / "fleet.csv", DATA / "tests.csv"], by="test")
+    day = dt.date(2024, 6, 3)
+    alone = health.refresh_fleet(engine, day, workers=1)
+    stored = _stored(engine)
+    split = health.refresh_fleet(engine, day, workers=2)
+    assert alone["processes"] == 1 and split["processes"] == 2
+    assert split["counts"] == alone["counts"] and _stored(engine) == stored
+    assert len(stored[0]) == alone["units"] == 4
