@@ -264,15 +264,15 @@ def _assess_split(holder: list[frames.Frames], moment: pd.Timestamp, stamps: tup
     process (the command line), never inside the dashboard's server; there, and on a
     small fleet, the assessment runs in-process.
     """
-    fr = holder[0]
+    # No local name holds the frames while forking: a fork copies this stack, and a
+    # worker could then never free the whole fleet's frames once it has its own part.
     if workers is None:
-        big = len(fr.readings) >= PARALLEL_MIN_READINGS
+        big = len(holder[0].readings) >= PARALLEL_MIN_READINGS
         workers = _cores() if big else 1
     can_fork = ("fork" in mp.get_all_start_methods() and threading.active_count() == 1)
-    bins = _family_bins(fr, workers) if workers > 1 and can_fork else []
+    bins = _family_bins(holder[0], workers) if workers > 1 and can_fork else []
     if len(bins) < 2:
-        holder.clear()
-        part = _assess_part(fr, moment, stamps)
+        part = _assess_part(holder.pop(), moment, stamps)
         part.processes = 1
         return part
     ctx = mp.get_context("fork")
@@ -284,9 +284,7 @@ def _assess_split(holder: list[frames.Frames], moment: pd.Timestamp, stamps: tup
         proc.start()
         send.close()
         running.append((proc, receive, families))
-    own = frames.of_families(fr, bins[0])
-    holder.clear()
-    del fr
+    own = frames.of_families(holder.pop(), bins[0])
     parts = [_assess_part(own, moment, stamps)]
     del own
     for proc, receive, families in running:
