@@ -2,12 +2,18 @@
 
 from __future__ import annotations
 
+from datetime import UTC, datetime
 from functools import lru_cache
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-from sqlalchemy import event
-from sqlalchemy.engine import Engine, make_url
-from sqlmodel import Session, create_engine
+# SQLAlchemy's own create_engine (sqlmodel re-exports it): importing sqlmodel and the
+# models is left to the commands that use them, so that the others start sooner.
+from sqlalchemy import create_engine, event
+from sqlalchemy.engine import Connection, Engine, make_url
+
+if TYPE_CHECKING:
+    from sqlmodel import Session
 
 SQLITE_BUSY_TIMEOUT_MS = 30_000
 
@@ -51,9 +57,24 @@ def get_engine(url: str) -> Engine:
 
 def session(url: str) -> Session:
     """A new session on the process-wide engine for ``url``."""
+    from sqlmodel import Session
+
     return Session(get_engine(url))
 
 
 def is_sqlite(engine: Engine) -> bool:
     """Whether the engine talks to SQLite."""
     return engine.dialect.name == "sqlite"
+
+
+def utc_now() -> datetime:
+    """Now, in UTC, to the second."""
+    return datetime.now(UTC).replace(microsecond=0)
+
+
+def stamp(conn: Connection | Engine) -> datetime | str:
+    """The time of a write, as this driver stores SQLAlchemy's UTC date-times."""
+    now = utc_now()
+    if conn.dialect.name == "sqlite":
+        return now.strftime("%Y-%m-%d %H:%M:%S.%f")
+    return now

@@ -24,13 +24,19 @@ from sqlalchemy import text
 from sqlalchemy.engine import Connection, Engine
 
 from fleetdb import assess as assess_mod
-from fleetdb import fleetfit, frames, limits
+from fleetdb import fleetfit, frames
 from fleetdb.assess import LEVEL_RANK, LEVELS, Assessment
-from fleetdb.ingest import stamp
+from fleetdb.db import stamp
 from fleetdb.views import unit_id_for
 
 __all__ = ["LEVELS", "board", "refresh_fleet", "refresh_units", "test_verdict", "unit_report",
            "week_start"]
+
+
+def _limits() -> Any:
+    from fleetdb import limits
+
+    return limits
 
 
 def week_start(day: dt.date) -> dt.date:
@@ -589,7 +595,7 @@ def unit_report(engine: Engine, fleet_no: str, as_of: dt.date | None = None) -> 
         "projected_date": u["projected_date"], "projected_date_early": u["projected_date_early"],
         "reasons": result.reasons[result.reasons["unit_id"] == uid][
             ["code", "level", "text", "numbers", "test_id"]].to_dict("records"),
-        "limits": limits.describe(engine, int(u["family_id"]), fam.get("limits_version")),
+        "limits": _limits().describe(engine, int(u["family_id"]), fam.get("limits_version")),
         "tests": tests, "readings": out_readings, "fits": fits,
         "spread": [{"test_id": i, "tested_at": s["tested_at"], "hours": s["hours"],
                     "ratio": s["dry_ratio"], "voided": bool(s["voided"]),
@@ -630,7 +636,7 @@ def test_verdict(engine: Engine, test_id: int) -> dict[str, Any]:
         "lowest_kpa": summ["dry_min_kpa"], "highest_kpa": summ["dry_max_kpa"],
         "ratio": summ["dry_ratio"], "level": result.units.loc[row[0], "level"],
         "previous_level": previous,
-        "limits": limits.describe(engine, int(result.units.loc[row[0], "family_id"]),
+        "limits": _limits().describe(engine, int(result.units.loc[row[0], "family_id"]),
                                   result.units.loc[row[0], "limits_version"]),
         "reasons": result.reasons[result.reasons["unit_id"] == row[0]][
             ["code", "level", "text"]].to_dict("records"),

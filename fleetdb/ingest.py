@@ -12,7 +12,6 @@ from __future__ import annotations
 import getpass
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
-from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
@@ -23,6 +22,7 @@ from sqlalchemy.exc import IntegrityError
 
 from fleetdb import atmosphere, validate
 from fleetdb.csvfiles import KIND_ORDER, CsvFile, read_csv
+from fleetdb.db import stamp
 from fleetdb.errors import InvalidInput, Problem
 from fleetdb.models import ImportBatch
 
@@ -65,18 +65,6 @@ def current_user() -> str:
         return getpass.getuser()
     except (KeyError, OSError):
         return "unknown"
-
-
-def _now() -> datetime:
-    return datetime.now(UTC).replace(microsecond=0)
-
-
-def stamp(conn: Connection) -> datetime | str:
-    """The time of a write, as this driver stores SQLAlchemy's UTC date-times."""
-    now = _now()
-    if conn.dialect.name == "sqlite":
-        return now.strftime("%Y-%m-%d %H:%M:%S.%f")
-    return now
 
 
 def _placeholders(conn: Connection, n: int) -> str:
