@@ -13,6 +13,7 @@ import os
 import subprocess
 import sys
 import tempfile
+from typing import Any
 
 import pandas as pd
 
@@ -41,25 +42,44 @@ def read_sqlite(path: str, sql: str) -> pd.DataFrame:
 
 def read_sqlite_many(path: str, frames: list[list[str]], *,
                      categorical: tuple[str, ...] = ()) -> list[pd.DataFrame]:
-    """Read several DataFrames at once, each the rows of one or more queries.
+    """:func:`read_sqlite_tables`, each table as a DataFrame (:func:`to_pandas`)."""
+    return [to_pandas(table, categorical) for table in read_sqlite_tables(path, frames)]
+
+
+def to_pandas(table: Any, categorical: tuple[str, ...] = ()) -> pd.DataFrame:
+    """An Arrow table as a DataFrame.
+
+    :param categorical: text columns to return as pandas categoricals (dictionary-encoded
+        while still in Arrow, so no Python string is made per row).
+    """
+    import pyarrow.compute as pc
+
+    for name in categorical:
+        if name in table.column_names:
+            table = table.set_column(table.column_names.index(name), name,
+                                     pc.dictionary_encode(table[name]))
+    return table.to_pandas()
+
+
+def read_sqlite_tables(path: str, frames: list[list[str]]) -> list[Any]:
+    """Read several Arrow tables at once, each the rows of one or more queries.
 
     Every query runs in a child process of its own, all at the same time (on a machine
     with more than one core the reads overlap): split a long read into queries over
-    ranges of ids to spread it. The queries of one frame must give the same columns;
+    ranges of ids to spread it. The queries of one table must give the same columns;
     their rows are joined in order. Each child reads in its own transaction: queries
     that must agree with each other under concurrent writers have to bound what they
     read (for example by the highest id at the start).
 
+    The tables are memory-mapped from the children's files (removed at once; the pages
+    stay readable while the tables are held), so a process forked afterwards shares them.
     The queries must return no NULLs (see :func:`read_sqlite`); wrap a nullable column
     in ``COALESCE`` beside an ``IS NULL`` flag.
 
-    :param frames: per frame, its queries.
-    :param categorical: text columns to return as pandas categoricals (dictionary-encoded
-        while still in Arrow, so no Python string is made per row).
+    :param frames: per table, its queries.
     :raises RuntimeError: when a child fails (its message included).
     """
     import pyarrow as pa
-    import pyarrow.compute as pc
 
     fd, base = tempfile.mkstemp(prefix="fleetdb-read-", suffix=".arrow")
     os.close(fd)
@@ -76,17 +96,10 @@ def read_sqlite_many(path: str, frames: list[list[str]], *,
             raise RuntimeError(f"Arrow read of {path} failed: {errors[0].strip()[-500:]}")
         result, at = [], 0
         for group in frames:
-            tables = []
-            for out in outs[at:at + len(group)]:
-                with pa.memory_map(out, "r") as source:
-                    tables.append(pa.ipc.open_file(source).read_all())
+            tables = [pa.ipc.open_file(pa.memory_map(out, "r")).read_all()
+                      for out in outs[at:at + len(group)]]
             at += len(group)
-            table = pa.concat_tables(tables) if len(tables) > 1 else tables[0]
-            for name in categorical:
-                if name in table.column_names:
-                    table = table.set_column(table.column_names.index(name), name,
-                                             pc.dictionary_encode(table[name]))
-            result.append(table.to_pandas())
+            result.append(pa.concat_tables(tables) if len(tables) > 1 else tables[0])
         return result
     finally:
         for leftover in (base, *outs):

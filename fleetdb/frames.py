@@ -8,6 +8,7 @@ the ORM.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -145,6 +146,32 @@ def _unit_filter(unit_ids: list[int] | None, column: str) -> str:
     return f" WHERE {column} IN ({ids})"
 
 
+@dataclass
+class RawFleet:
+    """The store's rows for the analysis as read, before :func:`shape` makes the frames.
+
+    ``tests`` and ``readings`` are Arrow tables after an Arrow read (memory-mapped, so a
+    forked process shares them), DataFrames otherwise; the small frames are final.
+    """
+
+    families: pd.DataFrame
+    units: pd.DataFrame
+    events: pd.DataFrame
+    tests: Any
+    readings: Any
+    as_of: pd.Timestamp | None
+
+    @property
+    def reading_count(self) -> int:
+        return len(self.readings)
+
+    def test_families(self) -> np.ndarray:
+        """The engine family of each test row (unknown units: -1)."""
+        unit = np.asarray(self.tests["unit_id"])
+        family = self.units["family_id"].reindex(unit)
+        return family.fillna(-1).to_numpy(dtype=np.int64)
+
+
 def load(engine: Engine, unit_ids: list[int] | None = None,
          as_of: pd.Timestamp | None = None, *, details: bool = True) -> Frames:
     """Read the frames for the whole fleet, or for some units.
@@ -155,6 +182,12 @@ def load(engine: Engine, unit_ids: list[int] | None = None,
     :param details: the tests' ``DETAIL_COLUMNS`` too (False: left out, for the analysis
         alone; a full refresh reads less).
     """
+    return shape(read(engine, unit_ids, as_of, details=details))
+
+
+def read(engine: Engine, unit_ids: list[int] | None = None,
+         as_of: pd.Timestamp | None = None, *, details: bool = True) -> RawFleet:
+    """The first half of :func:`load` (same parameters): the reading."""
     families = _query(engine, "SELECT * FROM engine_family").rename(columns={"id": "family_id"})
     families = families.set_index("family_id").drop(columns=["created_at"])
     families["warm_test"] = families["warm_test"].astype(bool)
@@ -173,21 +206,77 @@ def load(engine: Engine, unit_ids: list[int] | None = None,
     if arrow is not None:
         # Three processes: the tests, and the readings in two halves by id.
         half, last = arrow.last_reading // 2, arrow.last_test
-        tests, readings = arrowread.read_sqlite_many(arrow.path, [
+        tests, readings = arrowread.read_sqlite_tables(arrow.path, [
             [f"{_tests_sql(True, details)} WHERE t.id <= {last}"],
             [f"{readings_sql} WHERE r.id <= {half} AND r.test_id <= {last}",
-             f"{readings_sql} WHERE r.id > {half} AND r.test_id <= {last}"]],
-            categorical=("kind",))
-        tests = _restore_nulls(tests)
+             f"{readings_sql} WHERE r.id > {half} AND r.test_id <= {last}"]])
     else:
         tests = _query(engine, _tests_sql(False, details) + _unit_filter(unit_ids, "t.unit_id"))
         readings = _query(engine, readings_sql)
+
+    events = _query(engine, "SELECT id AS event_id, unit_id, date, hours, kind, cylinders, note "
+                    "FROM service_event" + _unit_filter(unit_ids, "unit_id"))
+    events["date"] = pd.to_datetime(events["date"]).astype("datetime64[us]")
+    if as_of is not None:
+        events = events[events["date"] <= as_of]
+    events["cylinders"] = [tuple(int(c) for c in s.split(";") if c) for s in events["cylinders"]]
+    events["hours"] = events["hours"].astype(float)
+    return RawFleet(families=families, units=units, events=events.reset_index(drop=True),
+                    tests=tests, readings=readings, as_of=as_of)
+
+
+def shape(raw: RawFleet, family_ids: list[int] | None = None) -> Frames:
+    """The second half of :func:`load`: the analysis frames from what :func:`read` read,
+    for every unit or for the units of some engine families (every family row is kept).
+
+    Everything the analysis computes for a unit depends only on its own family's units,
+    so the frames of a family subset assessed alone give that subset's whole-fleet result.
+    """
+    units, tests, readings, events = raw.units, raw.tests, raw.readings, raw.events
+    if family_ids is not None:
+        units = units[units["family_id"].isin(family_ids).to_numpy()]
+        events = events[events["unit_id"].isin(units.index).to_numpy()].reset_index(drop=True)
+    arrow = not isinstance(tests, pd.DataFrame)
+    if arrow:
+        import pyarrow as pa
+        import pyarrow.compute as pc
+
+        if family_ids is not None:
+            tests = tests.filter(pc.is_in(tests["unit_id"],
+                                          value_set=pa.array(units.index.to_numpy())))
+            readings = readings.filter(pc.is_in(readings["test_id"],
+                                                value_set=tests["test_id"]))
+        tests = _restore_nulls(arrowread.to_pandas(tests))
+        readings = arrowread.to_pandas(readings, categorical=("kind",))
+    elif family_ids is not None:
+        tests = tests[tests["unit_id"].isin(units.index).to_numpy()]
+        readings = readings[readings["test_id"].isin(tests["test_id"]).to_numpy()]
+    else:
+        tests = tests.copy(deep=False)  # shaping sets columns: the rows read stay as read
+    tests = _shape_tests(tests, units, raw.as_of)
+    return Frames(families=raw.families, units=units, tests=tests,
+                  readings=_shape_readings(readings, tests), events=events)
+
+
+def _shape_readings(readings: pd.DataFrame, tests: pd.DataFrame) -> pd.DataFrame:
+    """Readings of the tests kept (an ``as_of`` cut), in their analysis types."""
+    readings = readings[readings["test_id"].isin(tests.index)]
+    kinds = readings["kind"].astype("category")  # categories sorted, however it was read
+    readings["kind"] = kinds.cat.reorder_categories(sorted(kinds.cat.categories))
+    readings["cylinder"] = readings["cylinder"].astype("Int64").replace(0, pd.NA)
+    readings["value"] = readings["value"].astype(float)
+    return readings
+
+
+def _shape_tests(tests: pd.DataFrame, units: pd.DataFrame,
+                 as_of: pd.Timestamp | None) -> pd.DataFrame:
     tests["tested_at"] = pd.to_datetime(tests["tested_at"], format="ISO8601").astype(
         "datetime64[us]")
     if as_of is not None:
         tests = tests[tests["tested_at"] <= as_of]
-        voided_at = pd.to_datetime(tests["voided_at"], utc=True).dt.tz_convert(None)
-        tests.loc[voided_at > as_of, "void_reason"] = None
+        voided = tests["voided_at"].notna().to_numpy()  # few tests are voided: parse those
+        voided_at = pd.to_datetime(tests["voided_at"][voided], utc=True).dt.tz_convert(None)
+        tests.loc[voided_at.index[(voided_at > as_of).to_numpy()], "void_reason"] = None
     tests = tests.set_index("test_id")
     if not _in_unit_time_order(tests):
         tests = tests.sort_values(["unit_id", "tested_at"])
@@ -199,38 +288,4 @@ def load(engine: Engine, unit_ids: list[int] | None = None,
     tests["voided"] = tests["void_reason"].notna()
     for col in ("hours", "battery_v", "crank_rpm", "engine_temp_c"):
         tests[col] = tests[col].astype(float)
-
-    readings = readings[readings["test_id"].isin(tests.index)]
-    kinds = readings["kind"].astype("category")  # categories sorted, however it was read
-    readings["kind"] = kinds.cat.reorder_categories(sorted(kinds.cat.categories))
-    readings["cylinder"] = readings["cylinder"].astype("Int64").replace(0, pd.NA)
-    readings["value"] = readings["value"].astype(float)
-
-    events = _query(engine, "SELECT id AS event_id, unit_id, date, hours, kind, cylinders, note "
-                    "FROM service_event" + _unit_filter(unit_ids, "unit_id"))
-    events["date"] = pd.to_datetime(events["date"]).astype("datetime64[us]")
-    if as_of is not None:
-        events = events[events["date"] <= as_of]
-    events["cylinders"] = [tuple(int(c) for c in s.split(";") if c) for s in events["cylinders"]]
-    events["hours"] = events["hours"].astype(float)
-    return Frames(families=families, units=units, tests=tests, readings=readings,
-                  events=events.reset_index(drop=True))
-
-
-
-def of_families(fr: Frames, family_ids: list[int]) -> Frames:
-    """The frames of the units of some engine families (every family row is kept).
-
-    Everything the analysis computes for a unit depends only on its own family's units,
-    so assessing a fleet family by family gives the same result as assessing it whole.
-    """
-    unit_keep = fr.units["family_id"].isin(family_ids).to_numpy()
-    units = fr.units[unit_keep]
-    test_keep = fr.tests["family_id"].isin(family_ids).to_numpy()
-    tests = fr.tests[test_keep]
-    # Readings follow their test: look each one's test up by position, not by isin.
-    at = fr.tests.index.get_indexer(fr.readings["test_id"].to_numpy())
-    readings = fr.readings[(at >= 0) & test_keep[np.maximum(at, 0)]]
-    events = fr.events[fr.events["unit_id"].isin(units.index).to_numpy()]
-    return Frames(families=fr.families, units=units, tests=tests, readings=readings,
-                  events=events.reset_index(drop=True))
+    return tests

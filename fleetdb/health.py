@@ -209,15 +209,15 @@ def _cores() -> int:
         return os.cpu_count() or 1
 
 
-def _family_bins(fr: frames.Frames, n: int) -> list[list[int]]:
+def _family_bins(raw: frames.RawFleet, n: int) -> list[list[int]]:
     """The fleet's families in at most ``n`` bins of about equal work, heaviest first.
 
     A family's work is counted as its tests times its cylinders (about its readings);
     families are placed greedily, largest first, into the lightest bin.
     """
-    tests = fr.tests["family_id"].value_counts()
-    cylinders = fr.families["cylinders"].astype(float)
-    present = np.unique(fr.units["family_id"].to_numpy())
+    tests = pd.Series(raw.test_families()).value_counts()
+    cylinders = raw.families["cylinders"].astype(float)
+    present = np.unique(raw.units["family_id"].to_numpy())
     weight = {int(f): float(tests.get(f, 0)) * float(cylinders.get(f, 1.0)) for f in present}
     bins: list[list[int]] = [[] for _ in range(max(1, n))]
     load = [0.0] * len(bins)
@@ -246,11 +246,11 @@ def _assess_part(fr: frames.Frames, moment: pd.Timestamp, stamps: tuple) -> _Par
                  levels=result.units["level"], family_params=result.family_params)
 
 
-def _worker(send: Any, holder: list[frames.Frames], families: list[int],
+def _worker(send: Any, holder: list[frames.RawFleet], families: list[int],
             moment: pd.Timestamp, stamps: tuple) -> None:
-    """A forked worker: assess some families of the inherited frames, send the result."""
+    """A forked worker: assess some families of the inherited rows, send the result."""
     try:
-        part = frames.of_families(holder.pop(), families)
+        part = frames.shape(holder.pop(), families)
         send.send(("ok", _assess_part(part, moment, stamps)))
     except BaseException:  # the parent re-raises it with the worker's traceback
         send.send(("error", traceback.format_exc()))
@@ -258,27 +258,27 @@ def _worker(send: Any, holder: list[frames.Frames], families: list[int],
         send.close()
 
 
-def _assess_split(holder: list[frames.Frames], moment: pd.Timestamp, stamps: tuple,
+def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: tuple,
                   workers: int | None) -> _Part:
-    """Assess the fleet in ``holder`` (taken out of it, so its memory can be freed).
+    """Assess the fleet read into ``holder`` (taken out of it, so its memory can be freed).
 
     A large fleet is split by engine family over the machine's cores: every statistic
     the analysis pools is pooled within a family, so the parts give exactly the
     whole-fleet result. The read happens once, before the split; each worker is a fork
-    that inherits the frames without copying them, assesses its families, builds their
-    snapshot rows and sends them back. A fork is only taken from a single-threaded
-    process (the command line), never inside the dashboard's server; there, and on a
-    small fleet, the assessment runs in-process.
+    that inherits the rows read without copying them, shapes its families' frames,
+    assesses them, builds their snapshot rows and sends them back. A fork is only taken
+    from a single-threaded process (the command line), never inside the dashboard's
+    server; there, and on a small fleet, the assessment runs in-process.
     """
     # No local name holds the frames while forking: a fork copies this stack, and a
     # worker could then never free the whole fleet's frames once it has its own part.
     if workers is None:
-        big = len(holder[0].readings) >= PARALLEL_MIN_READINGS
+        big = holder[0].reading_count >= PARALLEL_MIN_READINGS
         workers = _cores() if big else 1
     can_fork = ("fork" in mp.get_all_start_methods() and threading.active_count() == 1)
     bins = _family_bins(holder[0], workers) if workers > 1 and can_fork else []
     if len(bins) < 2:
-        part = _assess_part(holder.pop(), moment, stamps)
+        part = _assess_part(frames.shape(holder.pop()), moment, stamps)
         part.processes = 1
         return part
     ctx = mp.get_context("fork")
@@ -290,7 +290,7 @@ def _assess_split(holder: list[frames.Frames], moment: pd.Timestamp, stamps: tup
         proc.start()
         send.close()
         running.append((proc, receive, families))
-    own = frames.of_families(holder.pop(), bins[0])
+    own = frames.shape(holder.pop(), bins[0])
     parts = [_assess_part(own, moment, stamps)]
     del own
     for proc, receive, families in running:
@@ -322,7 +322,7 @@ def refresh_fleet(engine: Engine, as_of: dt.date | None = None, *,
     week = week_start(day)
     with engine.connect() as conn:
         at = stamp(conn)
-    part = _assess_split([frames.load(engine, as_of=moment, details=False)], moment,
+    part = _assess_split([frames.read(engine, as_of=moment, details=False)], moment,
                          (week, day, at), workers)
     with engine.begin() as conn:
         _write_snapshot(conn, part.rows)

@@ -168,13 +168,17 @@ def _stored(engine: Engine) -> tuple[list, list]:
                 conn.execute(text(_FAMILY_WEAR_SQL)).all())
 
 
+@pytest.mark.parametrize("arrow", [False, True], ids=["plain-read", "arrow-read"])
 def test_fleet_split_by_family_gives_the_same_snapshot(demo_file: Path, tmp_path: Path,
-                                                        monkeypatch) -> None:  # noqa: ANN001
+                                                        monkeypatch, arrow: bool) -> None:  # noqa: ANN001
     # Self-consistency: every statistic is pooled within an engine family, so assessing
-    # the families in separate worker processes must store exactly what one process does.
-    # (A fork is refused while other threads run, as in the dashboard's server; here the
-    # test says there are none, since it forks before anything else starts.)
+    # the families in separate worker processes must store exactly what one process does,
+    # whether the rows came through the plain read or the Arrow read (shared by the
+    # workers as memory-mapped tables). (A fork is refused while other threads run, as
+    # in the dashboard's server; here the test says there are none.)
     monkeypatch.setattr(health.threading, "active_count", lambda: 1)
+    if arrow:
+        monkeypatch.setattr(frames, "ARROW_READ_MIN_ROWS", 1)
     one = db.make_engine(copy_store(demo_file, tmp_path, "one.sqlite"))
     split = db.make_engine(copy_store(demo_file, tmp_path, "split.sqlite"))
     next_week = AS_OF + dt.timedelta(days=7)  # a week with nothing stored yet
@@ -210,20 +214,21 @@ def test_a_failing_worker_fails_the_refresh_and_writes_nothing(demo_file: Path,
 
 
 def test_family_bins_balance_the_work(demo: Engine) -> None:
-    fr = frames.load(demo)
+    raw = frames.read(demo)
+    fr = frames.shape(raw)
     families = sorted(int(f) for f in fr.units["family_id"].unique())
     for n in (1, 2, len(families), len(families) + 3):
-        bins = health._family_bins(fr, n)
+        bins = health._family_bins(raw, n)
         assert sorted(f for b in bins for f in b) == families
         assert len(bins) == min(n, len(families))
     # Greedy largest-first into the lightest bin: no bin is more than the heaviest family
     # above the lightest bin.
     weight = (fr.tests["family_id"].value_counts()
               * fr.families["cylinders"].reindex(fr.tests["family_id"].value_counts().index))
-    bins = health._family_bins(fr, 2)
+    bins = health._family_bins(raw, 2)
     loads = [sum(float(weight.get(f, 0)) for f in b) for b in bins]
     assert max(loads) - min(loads) <= float(weight.max())
-    split = frames.of_families(fr, bins[0])
+    split = frames.shape(raw, bins[0])
     assert set(split.units["family_id"]) == set(bins[0])
     assert set(split.tests["unit_id"]) <= set(split.units.index)
     assert set(split.readings["test_id"]) == set(split.tests.index) & set(fr.readings["test_id"])
