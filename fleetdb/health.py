@@ -24,7 +24,7 @@ from sqlalchemy import text
 from sqlalchemy.engine import Connection, Engine
 
 from fleetdb import assess as assess_mod
-from fleetdb import fleetfit, frames
+from fleetdb import fleetfit, frames, malloc
 from fleetdb.assess import LEVEL_RANK, LEVELS, Assessment
 from fleetdb.db import stamp
 from fleetdb.views import unit_id_for
@@ -239,19 +239,26 @@ class _Part:
     processes: int = 1
 
 
-def _assess_part(fr: frames.Frames, moment: pd.Timestamp, stamps: tuple) -> _Part:
-    """Assess some units and build their snapshot rows (``stamps``: week, day, time)."""
-    result = assess_mod.assess(fr, moment)
-    return _Part(rows=_snapshot_rows(result.units, result.reasons, *stamps),
-                 levels=result.units["level"], family_params=result.family_params)
+def _assess_part(raw: list[frames.RawFleet], families: list[int] | None,
+                 moment: pd.Timestamp, stamps: tuple) -> _Part:
+    """Shape the frames of some families (None: all) from the rows in ``raw`` (taken out
+    of it), assess them and build their snapshot rows (``stamps``: week, day, time).
+
+    Only what the snapshot needs outlives the assessment: the frames, checks and wear
+    points are freed before the rows are built.
+    """
+    result = assess_mod.assess(frames.shape(raw.pop(), families), moment)
+    units, reasons, params = result.units, result.reasons, result.family_params
+    del result
+    return _Part(rows=_snapshot_rows(units, reasons, *stamps), levels=units["level"],
+                 family_params=params)
 
 
 def _worker(send: Any, holder: list[frames.RawFleet], families: list[int],
             moment: pd.Timestamp, stamps: tuple) -> None:
     """A forked worker: assess some families of the inherited rows, send the result."""
     try:
-        part = frames.shape(holder.pop(), families)
-        send.send(("ok", _assess_part(part, moment, stamps)))
+        send.send(("ok", _assess_part(holder, families, moment, stamps)))
     except BaseException:  # the parent re-raises it with the worker's traceback
         send.send(("error", traceback.format_exc()))
     finally:
@@ -278,7 +285,7 @@ def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: t
     can_fork = ("fork" in mp.get_all_start_methods() and threading.active_count() == 1)
     bins = _family_bins(holder[0], workers) if workers > 1 and can_fork else []
     if len(bins) < 2:
-        part = _assess_part(frames.shape(holder.pop()), moment, stamps)
+        part = _assess_part(holder, None, moment, stamps)
         part.processes = 1
         return part
     ctx = mp.get_context("fork")
@@ -290,9 +297,7 @@ def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: t
         proc.start()
         send.close()
         running.append((proc, receive, families))
-    own = frames.shape(holder.pop(), bins[0])
-    parts = [_assess_part(own, moment, stamps)]
-    del own
+    parts = [_assess_part(holder, bins[0], moment, stamps)]
     for proc, receive, families in running:
         try:
             status, payload = receive.recv()
@@ -322,11 +327,12 @@ def refresh_fleet(engine: Engine, as_of: dt.date | None = None, *,
     week = week_start(day)
     with engine.connect() as conn:
         at = stamp(conn)
-    part = _assess_split([frames.read(engine, as_of=moment, details=False)], moment,
-                         (week, day, at), workers)
-    with engine.begin() as conn:
-        _write_snapshot(conn, part.rows)
-        _store_family_params(conn, part.family_params, week, at)
+    with malloc.roomy():  # many large temporary arrays: see fleetdb.malloc
+        part = _assess_split([frames.read(engine, as_of=moment, details=False)], moment,
+                             (week, day, at), workers)
+        with engine.begin() as conn:
+            _write_snapshot(conn, part.rows)
+            _store_family_params(conn, part.family_params, week, at)
     counts = part.levels.value_counts()
     return {"week_start": week.isoformat(), "units": len(part.levels),
             "counts": {lvl: int(counts.get(lvl, 0)) for lvl in LEVELS},
