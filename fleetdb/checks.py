@@ -584,6 +584,8 @@ def _wet(dry: np.ndarray, wet: np.ndarray, low: np.ndarray, fp: dict[str, np.nda
              "damage; hydraulic lock); the wet readings are not used.",
              {"wet_readings": has_wet[hit].sum(axis=1)})
     eligible = has_wet & ~np.isnan(dry) & ~fp["diesel"][:, None] & low
+    if not eligible.any():  # most fleets' tests have no wet readings
+        return
     rise = wet - dry
     with np.errstate(invalid="ignore", divide="ignore"):
         frac = rise / dry
