@@ -207,35 +207,34 @@ def _series_points(fr: Frames, res: checks.CheckResult, as_of: pd.Timestamp) -> 
     def col(name: str, dtype: Any = None) -> np.ndarray:
         return tests[name].to_numpy(dtype=dtype)[both]
 
-    pts = pd.DataFrame({
-        "test_id": tests.index.to_numpy()[both], "unit_id": col("unit_id"),
-        "family_id": col("family_id"), "tested_at": col("tested_at"), "hours": col("hours"),
-        "cylinder": np.concatenate([rd["cylinder"].to_numpy(dtype=float, na_value=np.nan),
-                                    np.full(len(spread), float(SPREAD_CYLINDER))]),
-        "value_kpa": np.concatenate([value, np.full(len(spread), np.nan)]),
-        "value_sl": np.concatenate([value * (101.325 / of_test("baro_kpa")), ratio[spread]]),
-        "voided": col("voided", bool), "trustworthy": trusted[both]})
-    del spread, ratio
-    pts["in_fit"] = pts["trustworthy"] & ~pts["voided"]
+    # Every column is made as an array first and the frame built once at the end: each
+    # column set on a frame of millions of rows makes pandas copy its blocks again.
+    unit_id, family_id, tested_at = col("unit_id"), col("family_id"), col("tested_at")
+    cylinder = np.concatenate([rd["cylinder"].to_numpy(dtype=float, na_value=np.nan),
+                               np.full(len(spread), float(SPREAD_CYLINDER))]).astype(int)
+    voided, trustworthy = col("voided", bool), trusted[both]
     cyl_count = fams["cylinders"].reindex(fr.units["family_id"]).set_axis(fr.units.index)
-    pts["event_seg"] = _event_segments(pts, fr.events, cyl_count)
-    pts["cylinder"] = pts["cylinder"].astype(int)
-    pts["series"] = (pts["unit_id"].astype(np.int64) * SERIES_STRIDE
-                     + pts["cylinder"] * 1000 + pts["event_seg"])
-    # The pooling group of a spread series is its own (negative) group per family.
-    pts["group"] = np.where(pts["cylinder"] == SPREAD_CYLINDER, -1 - pts["family_id"],
-                            pts["family_id"])
+    event_seg = _event_segments(pd.DataFrame({"unit_id": unit_id, "cylinder": cylinder,
+                                              "tested_at": tested_at}), fr.events, cyl_count)
     # Which event segment is current for each unit and cylinder as of now.
-    pair = pts["unit_id"].to_numpy(np.int64) * 1000 + pts["cylinder"].to_numpy(np.int64)
-    pair_codes, pair_keys = pd.factorize(pair)
+    pair_codes, pair_keys = pd.factorize(unit_id.astype(np.int64) * 1000 + cylinder)
     now = pd.DataFrame({"unit_id": pair_keys // 1000, "cylinder": pair_keys % 1000,
                         "tested_at": as_of})
     current_seg = _event_segments(now, fr.events, cyl_count)[pair_codes]
-    pts["current"] = pts["event_seg"].to_numpy() == current_seg
     # Millions of rows are held to the end of a refresh: each key column in the smallest
     # integer type that holds its values exactly (the series key stays 64-bit).
-    for col in ("test_id", "unit_id", "family_id", "cylinder", "event_seg", "group"):
-        pts[col] = _narrow(pts[col].to_numpy())
+    pts = pd.DataFrame({
+        "test_id": _narrow(tests.index.to_numpy()[both]), "unit_id": _narrow(unit_id),
+        "family_id": _narrow(family_id), "tested_at": tested_at, "hours": col("hours"),
+        "cylinder": _narrow(cylinder),
+        "value_kpa": np.concatenate([value, np.full(len(spread), np.nan)]),
+        "value_sl": np.concatenate([value * (101.325 / of_test("baro_kpa")), ratio[spread]]),
+        "voided": voided, "trustworthy": trustworthy, "in_fit": trustworthy & ~voided,
+        "event_seg": _narrow(event_seg),
+        "series": unit_id.astype(np.int64) * SERIES_STRIDE + cylinder * 1000 + event_seg,
+        # The pooling group of a spread series is its own (negative) group per family.
+        "group": _narrow(np.where(cylinder == SPREAD_CYLINDER, -1 - family_id, family_id)),
+        "current": event_seg == current_seg})
     return pts
 
 
@@ -319,13 +318,13 @@ def assess(fr: Frames, as_of: pd.Timestamp, *, horizon_weeks: int = HORIZON_WEEK
     pts = _series_points(fr, res, as_of)
     in_fit = pts["in_fit"].to_numpy(dtype=bool)
     fits, steps = _fit_by_group(pts, in_fit, fr.families, family_params)
-    pts["step"] = False
-    pts["expected"] = np.nan
-    pts["lower_bound"] = np.nan
+    step = np.zeros(len(pts), dtype=bool)
+    expected, lower_bound = np.full(len(pts), np.nan), np.full(len(pts), np.nan)
     if in_fit.any():
-        pts.loc[in_fit, "step"] = steps["step"].to_numpy()
-        pts.loc[in_fit, "expected"] = steps["expected"].to_numpy()
-        pts.loc[in_fit, "lower_bound"] = steps["lower_bound"].to_numpy()
+        step[in_fit] = steps["step"].eq(True).to_numpy()  # a row the fit dropped: no step
+        expected[in_fit] = steps["expected"].to_numpy(dtype=float)
+        lower_bound[in_fit] = steps["lower_bound"].to_numpy(dtype=float)
+    pts = pts.assign(step=step, expected=expected, lower_bound=lower_bound)
     keys = fits.index.to_numpy(dtype=np.int64)
     fits = fits.assign(unit_id=keys // SERIES_STRIDE, cylinder=(keys % SERIES_STRIDE) // 1000,
                        event_seg=keys % 1000)
