@@ -499,8 +499,10 @@ def refresh(as_of: Any, workers: int | None, db: str | None) -> None:
     result = health.refresh_fleet(_engine(db), None if as_of is None else as_of.date(),
                                   workers=workers)
     counts = ", ".join(f"{k} {v}" for k, v in result["counts"].items())
+    split = (f" (assessed in {result['processes']} processes)" if result["processes"] > 1
+             else "")
     click.echo(f"Refreshed {result['units']} units for the week of {result['week_start']}: "
-               f"{counts}")
+               f"{counts}{split}")
 
 
 def serve_options(func: Callable) -> Callable:

@@ -168,3 +168,17 @@ def test_fresh_machine_default_store_folder_is_created(tmp_path: Path) -> None:
     units = subprocess.run([str(script), "units", "--json"], env=env, capture_output=True,
                            text=True, check=True).stdout
     assert json.loads(units) == []
+
+
+def test_refresh_in_worker_processes(store: str, monkeypatch) -> None:  # noqa: ANN001
+    # The same counts from one process and from a worker per engine family bin; the command
+    # says when it split the work. (It forks only from a single-threaded process; the test
+    # says this one is, whatever threads earlier tests left.)
+    from fleetdb import health
+
+    monkeypatch.setattr(health.threading, "active_count", lambda: 1)
+    alone = run(["refresh", "--as-of", "2024-06-03", "--workers", "1"], store)
+    split = run(["refresh", "--as-of", "2024-06-03", "--workers", "2"], store)
+    assert "processes" not in alone and split.endswith("(assessed in 2 processes)\n")
+    assert split.replace(" (assessed in 2 processes)", "") == alone
+    assert "Invalid value for '--workers'" in run(["refresh", "--workers", "0"], store, code=2)
