@@ -290,23 +290,31 @@ def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: t
         return part
     ctx = mp.get_context("fork")
     running = []
-    for families in bins[1:]:
-        receive, send = ctx.Pipe(duplex=False)
-        proc = ctx.Process(target=_worker, args=(send, holder, families, moment, stamps),
-                           daemon=True)
-        proc.start()
-        send.close()
-        running.append((proc, receive, families))
-    parts = [_assess_part(holder, bins[0], moment, stamps)]
-    for proc, receive, families in running:
-        try:
-            status, payload = receive.recv()
-        except EOFError:
-            status, payload = "error", f"the worker ended with exit code {proc.exitcode}"
-        proc.join()
-        if status != "ok":
-            raise RuntimeError(f"assessing engine families {families} failed:\n{payload}")
-        parts.append(payload)
+    try:
+        for families in bins[1:]:
+            receive, send = ctx.Pipe(duplex=False)
+            proc = ctx.Process(target=_worker, args=(send, holder, families, moment, stamps),
+                               daemon=True)
+            proc.start()
+            send.close()
+            running.append((proc, receive, families))
+        parts = [_assess_part(holder, bins[0], moment, stamps)]
+        for proc, receive, families in running:
+            try:
+                status, payload = receive.recv()
+            except EOFError:  # it died without a word (killed, out of memory)
+                proc.join()
+                status, payload = "error", f"the worker ended with exit code {proc.exitcode}"
+            proc.join()
+            if status != "ok":
+                raise RuntimeError(f"assessing engine families {families} failed:\n{payload}")
+            parts.append(payload)
+    finally:  # whatever failed, no worker is left behind, waiting to send
+        for proc, receive, _ in running:
+            if proc.is_alive():
+                proc.terminate()
+            proc.join()
+            receive.close()
     return _Part(rows=sorted((row for p in parts for row in p.rows), key=lambda r: r[0]),
                  levels=pd.concat([p.levels for p in parts]).sort_index(),
                  family_params=pd.concat([p.family_params for p in parts]).sort_index(),

@@ -249,3 +249,43 @@ def test_split_refresh_on_each_engine(engine: Engine, monkeypatch) -> None:  # n
     assert alone["processes"] == 1 and split["processes"] == 2
     assert split["counts"] == alone["counts"] and _stored(engine) == stored
     assert len(stored[0]) == alone["units"] == 4
+
+
+def test_a_worker_that_dies_fails_the_refresh_and_none_is_left(demo_file: Path, tmp_path: Path,
+                                                                 monkeypatch) -> None:  # noqa: ANN001
+    # A worker killed outright (out of memory, say) sends nothing: the refresh fails with
+    # its exit code and writes nothing. When the parent's own part fails, the workers still
+    # running are stopped, not left waiting to send.
+    import os
+    import time
+
+    monkeypatch.setattr(health.threading, "active_count", lambda: 1)
+    engine = db.make_engine(copy_store(demo_file, tmp_path))
+    before = _stored(engine)
+    real = assess.assess
+    families = frames.load(engine).units["family_id"].unique()
+    parent = os.getpid()
+
+    def dies(fr: frames.Frames, *args, **kwargs):  # noqa: ANN002, ANN003, ANN202
+        if os.getpid() != parent:
+            os._exit(9)
+        return real(fr, *args, **kwargs)
+
+    monkeypatch.setattr(assess, "assess", dies)
+    with pytest.raises(RuntimeError, match="the worker ended with exit code 9"):
+        health.refresh_fleet(engine, AS_OF + dt.timedelta(days=7), workers=2)
+    assert _stored(engine) == before
+
+    def parent_fails(fr: frames.Frames, *args, **kwargs):  # noqa: ANN002, ANN003, ANN202
+        if os.getpid() == parent:
+            raise ValueError("the parent's part failed")
+        time.sleep(120)  # a worker still busy when the parent gives up
+        return real(fr, *args, **kwargs)
+
+    import multiprocessing
+
+    monkeypatch.setattr(assess, "assess", parent_fails)
+    with pytest.raises(ValueError, match="parent's part failed"):
+        health.refresh_fleet(engine, AS_OF + dt.timedelta(days=7), workers=len(families))
+    assert multiprocessing.active_children() == []
+    assert _stored(engine) == before
