@@ -193,26 +193,6 @@ def test_fleet_split_by_family_gives_the_same_snapshot(demo_file: Path, tmp_path
     assert stored_split == stored_one
 
 
-def test_a_failing_worker_fails_the_refresh_and_writes_nothing(demo_file: Path,
-                                                                tmp_path: Path,
-                                                                monkeypatch) -> None:  # noqa: ANN001
-    monkeypatch.setattr(health.threading, "active_count", lambda: 1)
-    engine = db.make_engine(copy_store(demo_file, tmp_path))
-    before = _stored(engine)
-    real = assess.assess
-    families = frames.load(engine).units["family_id"].unique()
-
-    def broken(fr: frames.Frames, *args, **kwargs):  # noqa: ANN002, ANN003, ANN202
-        if families.max() in set(fr.units["family_id"]):
-            raise ValueError("planted failure")
-        return real(fr, *args, **kwargs)
-
-    monkeypatch.setattr(assess, "assess", broken)
-    with pytest.raises(RuntimeError, match=r"(?s)assessing engine families.*planted failure"):
-        health.refresh_fleet(engine, AS_OF + dt.timedelta(days=7), workers=2)
-    assert _stored(engine) == before
-
-
 def test_family_bins_balance_the_work(demo: Engine) -> None:
     raw = frames.read(demo)
     fr = frames.shape(raw)
@@ -251,41 +231,41 @@ def test_split_refresh_on_each_engine(engine: Engine, monkeypatch) -> None:  # n
     assert len(stored[0]) == alone["units"] == 4
 
 
-def test_a_worker_that_dies_fails_the_refresh_and_none_is_left(demo_file: Path, tmp_path: Path,
-                                                                 monkeypatch) -> None:  # noqa: ANN001
-    # A worker killed outright (out of memory, say) sends nothing: the refresh fails with
-    # its exit code and writes nothing. When the parent's own part fails, the workers still
-    # running are stopped, not left waiting to send.
+@pytest.mark.parametrize(("failure", "error", "match"), [
+    ("a worker raises", RuntimeError, r"(?s)assessing engine families.*planted failure"),
+    ("a worker dies", RuntimeError, "the worker ended with exit code 9"),
+    ("the parent raises", ValueError, "planted failure in the parent"),
+])
+def test_a_failed_part_fails_the_refresh_writes_nothing_and_leaves_no_worker(
+        demo_file: Path, tmp_path: Path, monkeypatch, failure: str, error: type,  # noqa: ANN001
+        match: str) -> None:
+    # A worker's exception comes back with its traceback; a worker killed outright (out of
+    # memory, say) sends nothing, and its exit code is reported; when the parent's own part
+    # fails, the workers still running are stopped, not left waiting to send. In every case
+    # nothing is written.
+    import multiprocessing
     import os
     import time
 
     monkeypatch.setattr(health.threading, "active_count", lambda: 1)
     engine = db.make_engine(copy_store(demo_file, tmp_path))
     before = _stored(engine)
-    real = assess.assess
-    families = frames.load(engine).units["family_id"].unique()
-    parent = os.getpid()
+    real, parent = assess.assess, os.getpid()
 
-    def dies(fr: frames.Frames, *args, **kwargs):  # noqa: ANN002, ANN003, ANN202
-        if os.getpid() != parent:
+    def planted(fr: frames.Frames, *args, **kwargs):  # noqa: ANN002, ANN003, ANN202
+        in_worker = os.getpid() != parent
+        if failure == "a worker raises" and in_worker:
+            raise ValueError("planted failure")
+        if failure == "a worker dies" and in_worker:
             os._exit(9)
+        if failure == "the parent raises":
+            if not in_worker:
+                raise ValueError("planted failure in the parent")
+            time.sleep(120)  # a worker still busy when the parent gives up
         return real(fr, *args, **kwargs)
 
-    monkeypatch.setattr(assess, "assess", dies)
-    with pytest.raises(RuntimeError, match="the worker ended with exit code 9"):
-        health.refresh_fleet(engine, AS_OF + dt.timedelta(days=7), workers=2)
-    assert _stored(engine) == before
-
-    def parent_fails(fr: frames.Frames, *args, **kwargs):  # noqa: ANN002, ANN003, ANN202
-        if os.getpid() == parent:
-            raise ValueError("the parent's part failed")
-        time.sleep(120)  # a worker still busy when the parent gives up
-        return real(fr, *args, **kwargs)
-
-    import multiprocessing
-
-    monkeypatch.setattr(assess, "assess", parent_fails)
-    with pytest.raises(ValueError, match="parent's part failed"):
-        health.refresh_fleet(engine, AS_OF + dt.timedelta(days=7), workers=len(families))
+    monkeypatch.setattr(assess, "assess", planted)
+    with pytest.raises(error, match=match):
+        health.refresh_fleet(engine, AS_OF + dt.timedelta(days=7), workers=3)
     assert multiprocessing.active_children() == []
     assert _stored(engine) == before
