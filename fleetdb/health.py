@@ -33,12 +33,6 @@ __all__ = ["LEVELS", "board", "refresh_fleet", "refresh_units", "test_verdict", 
            "week_start"]
 
 
-def _limits() -> Any:
-    from fleetdb import limits
-
-    return limits
-
-
 def week_start(day: dt.date) -> dt.date:
     """The Monday of ``day``'s ISO week."""
     return day - dt.timedelta(days=day.weekday())
@@ -285,9 +279,7 @@ def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: t
     can_fork = ("fork" in mp.get_all_start_methods() and threading.active_count() == 1)
     bins = _family_bins(holder[0], workers) if workers > 1 and can_fork else []
     if len(bins) < 2:
-        part = _assess_part(holder, None, moment, stamps)
-        part.processes = 1
-        return part
+        return _assess_part(holder, None, moment, stamps)
     ctx = mp.get_context("fork")
     running = []
     try:
@@ -530,6 +522,8 @@ def unit_report(engine: Engine, fleet_no: str, as_of: dt.date | None = None) -> 
 
     The shape is documented in DEVELOPERS.md ("The health API") and in the README.
     """
+    from fleetdb import limits  # its models are not needed to refresh
+
     uid = unit_id_for(engine, fleet_no)
     day, moment = _as_of(as_of)
     with engine.connect() as conn:
@@ -609,7 +603,7 @@ def unit_report(engine: Engine, fleet_no: str, as_of: dt.date | None = None) -> 
         "projected_date": u["projected_date"], "projected_date_early": u["projected_date_early"],
         "reasons": result.reasons[result.reasons["unit_id"] == uid][
             ["code", "level", "text", "numbers", "test_id"]].to_dict("records"),
-        "limits": _limits().describe(engine, int(u["family_id"]), fam.get("limits_version")),
+        "limits": limits.describe(engine, int(u["family_id"]), fam.get("limits_version")),
         "tests": tests, "readings": out_readings, "fits": fits,
         "spread": [{"test_id": i, "tested_at": s["tested_at"], "hours": s["hours"],
                     "ratio": s["dry_ratio"], "voided": bool(s["voided"]),
@@ -627,6 +621,8 @@ def test_verdict(engine: Engine, test_id: int) -> dict[str, Any]:
 
     Refreshes the unit's health (this week's snapshot) on the way.
     """
+    from fleetdb import limits  # its models are not needed to refresh
+
     with engine.connect() as conn:
         row = conn.execute(text("SELECT t.unit_id, u.fleet_no, t.tested_at FROM test t JOIN "
                                 "unit u ON u.id = t.unit_id WHERE t.id = :t"),
@@ -650,7 +646,7 @@ def test_verdict(engine: Engine, test_id: int) -> dict[str, Any]:
         "lowest_kpa": summ["dry_min_kpa"], "highest_kpa": summ["dry_max_kpa"],
         "ratio": summ["dry_ratio"], "level": result.units.loc[row[0], "level"],
         "previous_level": previous,
-        "limits": _limits().describe(engine, int(result.units.loc[row[0], "family_id"]),
+        "limits": limits.describe(engine, int(result.units.loc[row[0], "family_id"]),
                                   result.units.loc[row[0], "limits_version"]),
         "reasons": result.reasons[result.reasons["unit_id"] == row[0]][
             ["code", "level", "text"]].to_dict("records"),
