@@ -39,7 +39,7 @@ from scipy import special
 
 from fleetdb import checks, fleetfit
 from fleetdb.defaults import DEFAULTS
-from fleetdb.frames import Frames
+from fleetdb.frames import Frames, in_unit_time_order
 from fleetdb.units import KPA_PER_UNIT
 
 LEVELS = ("act", "plan", "retest", "watch", "sound")
@@ -344,13 +344,10 @@ def _latest(tests: pd.DataFrame, keep: np.ndarray) -> pd.DataFrame:
     ``frames.load`` gives the tests in unit and time order, so the latest of a unit is
     the last kept row of its run: found without sorting (a unit has one test a moment).
     """
-    unit = tests["unit_id"].to_numpy()
-    at = tests["tested_at"].to_numpy()
-    rows = np.flatnonzero(keep)
-    du = np.diff(unit)
-    if len(unit) > 1 and not ((du >= 0).all() and ((du > 0) | (at[1:] >= at[:-1])).all()):
+    if not in_unit_time_order(tests):
         return tests[keep].sort_values("tested_at").groupby("unit_id").tail(1)
-    kept_unit = unit[rows]
+    rows = np.flatnonzero(keep)
+    kept_unit = tests["unit_id"].to_numpy()[rows]
     return tests.iloc[rows[np.r_[kept_unit[1:] != kept_unit[:-1], True]] if len(rows) else rows]
 
 

@@ -128,7 +128,7 @@ def _restore_nulls(tests: pd.DataFrame) -> pd.DataFrame:
     return tests
 
 
-def _in_unit_time_order(tests: pd.DataFrame) -> bool:
+def in_unit_time_order(tests: pd.DataFrame) -> bool:
     """Whether the tests are already sorted by unit, then time (as a store usually gives
     them), so that sorting can be skipped."""
     unit = tests["unit_id"].to_numpy()
@@ -281,7 +281,7 @@ def _shape_tests(tests: pd.DataFrame, units: pd.DataFrame,
         voided_at = pd.to_datetime(tests["voided_at"][voided], utc=True).dt.tz_convert(None)
         tests.loc[voided_at.index[(voided_at > as_of).to_numpy()], "void_reason"] = None
     tests = tests.set_index("test_id")
-    if not _in_unit_time_order(tests):
+    if not in_unit_time_order(tests):
         tests = tests.sort_values(["unit_id", "tested_at"])
     tests["family_id"] = units["family_id"].reindex(tests["unit_id"]).to_numpy()
     tests["baro_measured"] = tests["baro_kpa"].notna()
