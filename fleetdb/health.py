@@ -13,6 +13,7 @@ import datetime as dt
 import json
 import multiprocessing as mp
 import os
+import sys
 import threading
 import traceback
 from dataclasses import dataclass
@@ -276,7 +277,9 @@ def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: t
     if workers is None:
         big = holder[0].reading_count >= PARALLEL_MIN_READINGS
         workers = _cores() if big else 1
-    can_fork = ("fork" in mp.get_all_start_methods() and threading.active_count() == 1)
+    # Linux only (numpy's and Arrow's thread pools are made anew in a forked child there;
+    # on macOS a fork after the system's frameworks are loaded is not safe).
+    can_fork = sys.platform == "linux" and threading.active_count() == 1
     bins = _family_bins(holder[0], workers) if workers > 1 and can_fork else []
     if len(bins) < 2:
         return _assess_part(holder, None, moment, stamps)
