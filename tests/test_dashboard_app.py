@@ -39,10 +39,15 @@ def client(store_url: str) -> Any:
     return app.server.test_client()
 
 
-def _callback(client: Any, output_id: str) -> dict[str, Any]:
+def _callback(client: Any, output_id: str, trigger: str | None = None) -> dict[str, Any]:
+    """The callback writing ``output_id``; of several (``allow_duplicate``), the one that
+    ``trigger`` (``id.property``) is an input of."""
     deps = client.get("/_dash-dependencies").get_json()
     matches = [d for d in deps if output_id in
                [part.rsplit(".", 1)[0] for part in d["output"].strip(".").split("...")]]
+    if trigger is not None and len(matches) > 1:
+        matches = [d for d in matches
+                   if trigger in [f"{i['id']}.{i['property']}" for i in d["inputs"]]]
     assert len(matches) == 1, [d["output"] for d in deps]
     return matches[0]
 

@@ -46,12 +46,13 @@ def stored(store_url: str, tmp_path: Path) -> capture_store.CaptureReport:  # no
 def _post(client: Any, output_id: str, inputs: list[dict[str, Any]],
           state: list[dict[str, Any]] | None = None, changed: str | None = None) -> Any:
     """POST one callback as the renderer does; return the JSON reply."""
-    dep = _callback(client, output_id)
+    changed = changed or f"{inputs[0]['id']}.{inputs[0]['property']}"
+    dep = _callback(client, output_id, changed)
     parts = dep["output"].strip(".").split("...")
     outputs = [{"id": p.rsplit(".", 1)[0], "property": p.rsplit(".", 1)[1]} for p in parts]
     body = {"output": dep["output"], "outputs": outputs if len(outputs) > 1 else outputs[0],
             "inputs": inputs, "state": state or [],
-            "changedPropIds": [changed or f"{inputs[0]['id']}.{inputs[0]['property']}"]}
+            "changedPropIds": [changed]}
     reply = client.post("/_dash-update-component", json=body)
     assert reply.status_code in (200, 204), reply.data[:800]
     return reply.get_json() if reply.status_code == 200 else None
@@ -160,10 +161,10 @@ def _flat(values: Any) -> np.ndarray:
 
 def test_waveform_marks_events_and_zoom_redraws_at_full_resolution(
         client: Any, store_url: str, stored: capture_store.CaptureReport) -> None:  # noqa: F811
-    inputs = [{"id": ids.UNIT_CAPTURE_PICK, "property": "value", "value": stored.capture_id},
-              {"id": ids.UNIT_PRESSURE_UNIT, "property": "value", "value": "kPa"},
-              {"id": ids.UNIT_CAPTURE_WAVEFORM, "property": "relayoutData", "value": None}]
-    fig = _post(client, ids.UNIT_CAPTURE_WAVEFORM, inputs)["response"][
+    picked = [{"id": ids.UNIT_CAPTURE_PICK, "property": "value", "value": stored.capture_id},
+              {"id": ids.UNIT_PRESSURE_UNIT, "property": "value", "value": "kPa"}]
+    relayout = {"id": ids.UNIT_CAPTURE_WAVEFORM, "property": "relayoutData", "value": None}
+    fig = _post(client, ids.UNIT_CAPTURE_WAVEFORM, picked, [relayout])["response"][
         ids.UNIT_CAPTURE_WAVEFORM]["figure"]
     channels = fig["data"][:3]
     assert [c["name"] for c in channels] == ["cyl 1 pressure (p1)", "starter current (amps)",
@@ -179,20 +180,20 @@ def test_waveform_marks_events_and_zoom_redraws_at_full_resolution(
                                stored.analysis.channels[0]["peak_times_s"])
     assert fig["layout"]["uirevision"] == stored.capture_id
 
-    zoom = {"xaxis.range[0]": 1.0, "xaxis.range[1]": 1.1}
-    inputs[2]["value"] = zoom
-    patched = _post(client, ids.UNIT_CAPTURE_WAVEFORM, inputs,
-                    changed=f"{ids.UNIT_CAPTURE_WAVEFORM}.relayoutData")
-    ops = patched["response"][ids.UNIT_CAPTURE_WAVEFORM]["figure"]["operations"]
+    # Zooming is a callback of its own (so that the graph's first relayout event can never
+    # drop the drawing above): the picked capture and unit are its state.
+    relayout["value"] = {"xaxis.range[0]": 1.0, "xaxis.range[1]": 1.1}
+    patched = _post(client, ids.UNIT_CAPTURE_WAVEFORM, [relayout], picked)
+    ops = next(iter(patched["response"][ids.UNIT_CAPTURE_WAVEFORM].values()))["operations"]
     xs = {op["location"][1]: op["params"]["value"] for op in ops if op["location"][-1] == "x"}
     window = raw["t"][(raw["t"] >= 1.0) & (raw["t"] <= 1.1)]
     assert sorted(xs) == [0, 1, 2]
     assert len(xs[0]) == window.size + 2  # every sample of the window, at full resolution
-    # A y-only zoom does not redraw.
-    inputs[2]["value"] = {"yaxis.range[0]": 0, "yaxis.range[1]": 10}
-    unchanged = _post(client, ids.UNIT_CAPTURE_WAVEFORM, inputs,
-                      changed=f"{ids.UNIT_CAPTURE_WAVEFORM}.relayoutData")
-    assert unchanged is None or unchanged["response"] == {}  # dash.no_update
+    # A y-only zoom, or the graph's first autosize, does not redraw.
+    for event in ({"yaxis.range[0]": 0, "yaxis.range[1]": 10}, {"autosize": True}):
+        relayout["value"] = event
+        unchanged = _post(client, ids.UNIT_CAPTURE_WAVEFORM, [relayout], picked)
+        assert unchanged is None or unchanged["response"] == {}  # dash.no_update
 
 
 @pytest.mark.parametrize(("relayout", "window"), [
@@ -352,10 +353,10 @@ def test_save_logs_the_test_like_the_cli_and_keeps_the_capture(
 def test_changing_the_unit_keeps_the_zoomed_window_at_full_resolution(
         client: Any, stored: capture_store.CaptureReport) -> None:
     inputs = [{"id": ids.UNIT_CAPTURE_PICK, "property": "value", "value": stored.capture_id},
-              {"id": ids.UNIT_PRESSURE_UNIT, "property": "value", "value": "psi"},
-              {"id": ids.UNIT_CAPTURE_WAVEFORM, "property": "relayoutData",
-               "value": {"xaxis.range[0]": 2.0, "xaxis.range[1]": 2.2}}]
-    fig = _post(client, ids.UNIT_CAPTURE_WAVEFORM, inputs,
+              {"id": ids.UNIT_PRESSURE_UNIT, "property": "value", "value": "psi"}]
+    relayout = [{"id": ids.UNIT_CAPTURE_WAVEFORM, "property": "relayoutData",
+                 "value": {"xaxis.range[0]": 2.0, "xaxis.range[1]": 2.2}}]
+    fig = _post(client, ids.UNIT_CAPTURE_WAVEFORM, inputs, relayout,
                 changed=f"{ids.UNIT_PRESSURE_UNIT}.value")["response"][
         ids.UNIT_CAPTURE_WAVEFORM]["figure"]
     t = _recording()["t"]

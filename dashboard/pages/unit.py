@@ -179,26 +179,40 @@ def _describe_capture(capture_id: int | None, unit: str) -> tuple[Any, Any]:
 
 @callback(Output(ids.UNIT_CAPTURE_WAVEFORM, "figure"), Input(ids.UNIT_CAPTURE_PICK, "value"),
           Input(ids.UNIT_PRESSURE_UNIT, "value"),
-          Input(ids.UNIT_CAPTURE_WAVEFORM, "relayoutData"))
+          State(ids.UNIT_CAPTURE_WAVEFORM, "relayoutData"))
 def _draw_waveform(capture_id: int | None, unit: str, relayout: dict[str, Any] | None) -> Any:
+    """The whole waveform of the picked capture (thinned to the graph's width)."""
     if capture_id is None:
         return figures.message_figure("No capture picked.", "Waveform")
     shown = capture_data.stored_capture(data.current_url(), int(capture_id))
     window = capture_data.zoom_window(relayout)
-    if ctx.triggered_id == ids.UNIT_CAPTURE_WAVEFORM:
-        if window is None:
-            return dash.no_update
-        # Only the channels' points change; uirevision keeps the zoom the user chose.
-        patch = Patch()
-        for i, trace in enumerate(capture_data.traces(shown, *window)):
-            patch["data"][i]["x"] = trace.time_s.tolist()
-            patch["data"][i]["y"] = capture_figures.scaled(trace.kind, trace.values,
-                                                           unit).tolist()
-        return patch
     # A new pressure unit keeps the zoom (uirevision), so draw the zoomed window in full.
     keep = window if ctx.triggered_id == ids.UNIT_PRESSURE_UNIT and window else (None, None)
     return capture_figures.waveform(capture_data.traces(shown, *keep), shown.derived, unit,
                                     revision=capture_id)
+
+
+# A callback of its own, not an input of the one above: Dash keeps only the newest answer
+# of a callback, so a relayout event of the still-empty graph (its first autosize) sent
+# while the whole waveform was being drawn would drop that drawing.
+@callback(Output(ids.UNIT_CAPTURE_WAVEFORM, "figure", allow_duplicate=True),
+          Input(ids.UNIT_CAPTURE_WAVEFORM, "relayoutData"),
+          State(ids.UNIT_CAPTURE_PICK, "value"), State(ids.UNIT_PRESSURE_UNIT, "value"),
+          prevent_initial_call=True)
+def _zoom_waveform(relayout: dict[str, Any] | None, capture_id: int | None, unit: str) -> Any:
+    """Every sample of the window the user zoomed to (only the channels' points change;
+    uirevision keeps the zoom the user chose)."""
+    window = capture_data.zoom_window(relayout)
+    if capture_id is None or window is None:
+        return dash.no_update
+    shown = capture_data.stored_capture(data.current_url(), int(capture_id))
+    patch = Patch()
+    for i, trace in enumerate(capture_data.traces(shown, *window)):
+        patch["data"][i]["x"] = trace.time_s.tolist()
+        patch["data"][i]["y"] = capture_figures.scaled(trace.kind, trace.values, unit).tolist()
+    return patch
+
+
 @callback(Output(ids.UNIT_TRAIL_LINK, "href"), Input(ids.UNIT_PICK, "value"))
 def _link_trail(fleet_no: str | None) -> str:
     return f"/trail?{urlencode({'fleet_no': fleet_no or ''})}"
