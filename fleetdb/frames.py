@@ -15,7 +15,7 @@ import pandas as pd
 from sqlalchemy import text
 from sqlalchemy.engine import Engine
 
-from fleetdb import arrowread, atmosphere
+from fleetdb import arrowread, atmosphere, trend
 
 
 @dataclass
@@ -131,12 +131,7 @@ def _restore_nulls(tests: pd.DataFrame) -> pd.DataFrame:
 def in_unit_time_order(tests: pd.DataFrame) -> bool:
     """Whether the tests are already sorted by unit, then time (as a store usually gives
     them), so that sorting can be skipped."""
-    unit = tests["unit_id"].to_numpy()
-    at = tests["tested_at"].to_numpy()
-    if len(unit) < 2:
-        return True
-    du = np.diff(unit)
-    return bool((du >= 0).all() and ((du > 0) | (at[1:] >= at[:-1])).all())
+    return trend.in_series_order(tests["unit_id"].to_numpy(), tests["tested_at"].to_numpy())
 
 
 def _unit_filter(unit_ids: list[int] | None, column: str) -> str:
@@ -251,9 +246,8 @@ def shape(raw: RawFleet, family_ids: list[int] | None = None) -> Frames:
         # Arrow's allocator keeps what the filters and conversions freed (about 200 MB
         # a worker at 20,000 units) unless asked to give it back.
         pa.default_memory_pool().release_unused()
-    elif family_ids is not None:
+    elif family_ids is not None:  # the readings follow in _shape_readings
         tests = tests[tests["unit_id"].isin(units.index).to_numpy()]
-        readings = readings[readings["test_id"].isin(tests["test_id"]).to_numpy()]
     else:
         tests = tests.copy(deep=False)  # shaping sets columns: the rows read stay as read
     tests = _shape_tests(tests, units, raw.as_of)

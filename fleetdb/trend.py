@@ -541,12 +541,13 @@ def _judge_chunked(
     return {key: np.concatenate([part[key] for part in parts]) for key in parts[0]}
 
 
-def _in_series_order(codes: np.ndarray, x: np.ndarray) -> bool:
-    """Whether rows are sorted by series code, then by x within each series."""
+def in_series_order(codes: np.ndarray, x: np.ndarray) -> bool:
+    """Whether rows are sorted by series code (any integer key), then by x within each
+    series (any ordered type: hours, times)."""
     if len(codes) < 2:
         return True
     dc = np.diff(codes)
-    return bool((dc >= 0).all() and ((dc > 0) | (np.diff(x) >= 0)).all())
+    return bool((dc >= 0).all() and ((dc > 0) | (x[1:] >= x[:-1])).all())
 
 
 def detect_steps(
@@ -582,7 +583,7 @@ def detect_steps(
     df_all = np.full(n_rows, np.nan) if noise_df is None else np.asarray(noise_df, dtype=float)
     level_all = np.broadcast_to(np.asarray(confidence, dtype=float), (n_rows,))
     drop_all = np.broadcast_to(np.asarray(min_drop, dtype=float), (n_rows,))
-    if _in_series_order(codes, xa):  # rows are increasing: ties already in input order
+    if in_series_order(codes, xa):  # rows are increasing: ties already in input order
         src, c, xs, ys = rows, codes, xa, ya
     else:
         order = np.lexsort((rows, xa, codes))
