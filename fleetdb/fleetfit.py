@@ -21,6 +21,7 @@ from fleetdb.trend import (
     _ols,
     _projection,
     detect_steps,
+    detect_steps_again,
     fit_theil_sen,
     pool_slopes,
     pooled_residual_sd,
@@ -146,10 +147,13 @@ def fit_fleet(
     first_pass = detect_steps(codes, xa, ya, confidence=step_level, min_drop=step_drop)
     noise_sd, noise_df = _family_noise(codes, first_pass["segment"].to_numpy(), xa, ya, family,
                                        external)
-    steps = detect_steps(codes, xa, ya, noise_sd=noise_sd[codes], noise_df=noise_df[codes],
-                         confidence=step_level, min_drop=step_drop)
+    steps = detect_steps_again(first_pass, codes, xa, ya, noise_sd=noise_sd[codes],
+                               noise_df=noise_df[codes], confidence=step_level,
+                               min_drop=step_drop)
     segment = steps["segment"].to_numpy()
-    noise_sd, noise_df = _family_noise(codes, segment, xa, ya, family, external)
+    if not np.array_equal(segment, first_pass["segment"].to_numpy()):
+        noise_sd, noise_df = _family_noise(codes, segment, xa, ya, family, external)
+    del first_pass
 
     current = segment == _group_max(codes, segment, g)[codes]
     fit = _ols(codes[current], xa[current], ya[current], g)

@@ -50,7 +50,7 @@ import pandas as pd
 from scipy import special
 
 __all__ = [
-    "FLEET_COLUMNS", "crossing_hours", "dersimonian_laird", "detect_steps",
+    "FLEET_COLUMNS", "crossing_hours", "dersimonian_laird", "detect_steps", "detect_steps_again",
     "fit_ols", "fit_ols_through_origin", "fit_theil_sen", "pool_slopes", "pooled_residual_sd",
     "project_crossings", "shrink",
 ]
@@ -628,3 +628,73 @@ def detect_steps(
         out[key] = column
     out["drop"] = out["expected"].to_numpy() - np.asarray(y, dtype=float)
     return out
+
+
+def detect_steps_again(
+    without_noise: pd.DataFrame, series: ArrayLike, x: ArrayLike, y: ArrayLike, *,
+    noise_sd: ArrayLike, noise_df: ArrayLike, confidence: float | ArrayLike = 0.95,
+    min_drop: float | ArrayLike = 0.0,
+) -> pd.DataFrame:
+    """:func:`detect_steps` with ``noise_sd``/``noise_df``, given its result without them.
+
+    The noise only judges a segment's third reading (two earlier readings, no own s), which
+    a pass without it leaves unjudged. So only those readings are judged here; where none
+    of a series' is a step, its segments stand and the result is the first pass's with
+    those readings' judgement filled in. A series where one is a step is run again whole.
+    The result is the same as ``detect_steps(series, x, y, noise_sd=..., ...)``.
+
+    :param without_noise: ``detect_steps(series, x, y, confidence=..., min_drop=...)`` of
+        the same rows (index as given there).
+    :param noise_sd, noise_df, confidence, min_drop: as for :func:`detect_steps`.
+    """
+    out = without_noise.copy()
+    n_rows = len(out)
+    codes, _, xa, ya, rows = _prepare(series, x, y)
+    if in_series_order(codes, xa):
+        src, c, xs, ys = rows, codes, xa, ya
+    else:
+        order = np.lexsort((rows, xa, codes))
+        src, c, xs, ys = rows[order], codes[order], xa[order], ya[order]
+    third = np.flatnonzero(out["n_before"].to_numpy()[src] == 2)  # sorted positions
+    if third.size == 0:
+        return out
+
+    def per_row(values: ArrayLike) -> np.ndarray:
+        return np.broadcast_to(np.asarray(values, dtype=float), (n_rows,))[src]
+
+    # Each third reading with its segment's two earlier ones (never shared: a segment
+    # starts at a step, which the first pass finds only at a reading judged on three).
+    work = (third[:, None] + np.arange(-2, 1)).ravel()
+    block = np.repeat(third - 2, 3)
+    check = _judge_blocks(xs, ys, work, block, per_row(noise_sd), per_row(noise_df),
+                          1 - (1 - per_row(confidence)) / 2, per_row(min_drop))
+    last = np.arange(2, work.size, 3)
+    stepped = check["step"][last]
+    hit_series = np.unique(c[third[stepped]])
+    keep = ~np.isin(c[third], hit_series)
+    at = src[third[keep]]
+    for key in ("judged", "step", "expected", "lower_bound"):
+        column = out[key].to_numpy(copy=True)
+        column[at] = check[key][last][keep]
+        out[key] = column
+    drop = out["drop"].to_numpy(copy=True)
+    drop[at] = out["expected"].to_numpy()[at] - np.asarray(y, dtype=float)[at]
+    out["drop"] = drop
+    if hit_series.size:  # a new step: these series' later segments change, so run again
+        redo = rows[np.isin(codes, hit_series)]  # in input order, as detect_steps breaks ties
+        part = detect_steps(
+            np.asarray(series)[redo], np.asarray(x, dtype=float)[redo],
+            np.asarray(y, dtype=float)[redo], noise_sd=np.asarray(noise_sd, dtype=float)[redo],
+            noise_df=np.asarray(noise_df, dtype=float)[redo],
+            confidence=_pick(confidence, redo), min_drop=_pick(min_drop, redo))
+        for key in part.columns:
+            column = out[key].to_numpy(copy=True)
+            column[redo] = part[key].to_numpy()
+            out[key] = column
+    return out
+
+
+def _pick(values: float | ArrayLike, rows: np.ndarray) -> float | np.ndarray:
+    """One value as it is, or the given rows of one value per row."""
+    values = np.asarray(values, dtype=float)
+    return float(values) if values.ndim == 0 else values[rows]

@@ -551,6 +551,48 @@ def test_vectorised_results_equal_a_per_series_loop(rows: list, noise: float) ->
         assert steps["segment"][part].tolist() == segments
 
 
+def _both_ways(keys: np.ndarray, x: np.ndarray, y: np.ndarray, noise: np.ndarray,
+               level: np.ndarray | float, drop: np.ndarray | float) -> tuple:
+    """detect_steps with the noise in one pass, and the two-step way fit_fleet takes."""
+    df = np.full(len(x), 12.0)
+    direct = trend.detect_steps(keys, x, y, noise_sd=noise, noise_df=df, confidence=level,
+                                min_drop=drop)
+    first = trend.detect_steps(keys, x, y, confidence=level, min_drop=drop)
+    again = trend.detect_steps_again(first, keys, x, y, noise_sd=noise, noise_df=df,
+                                     confidence=level, min_drop=drop)
+    return direct, again, first
+
+
+@settings(max_examples=80, deadline=None)
+@given(series_strategy, st.floats(0.5, 20.0), st.booleans())
+def test_judging_again_with_the_noise_equals_one_pass_with_it(rows: list, noise: float,
+                                                             per_row: bool) -> None:
+    # Reference: detect_steps itself, given the noise from the start; bit for bit.
+    keys, x, y = as_arrays(rows)
+    level = np.where(np.arange(len(x)) % 2, 0.95, 0.99) if per_row else 0.95
+    drop = np.where(np.arange(len(x)) % 3, 0.0, 2.0) if per_row else 0.0
+    direct, again, _ = _both_ways(keys, x, y, np.full(len(x), noise), level, drop)
+    pd.testing.assert_frame_equal(again, direct)
+
+
+def test_judging_again_on_a_fleet_takes_both_paths() -> None:
+    # Reference: detect_steps with the noise in one pass. Invented series with planted
+    # drops: some third readings become steps with the noise (their series are run again),
+    # most only gain a judgement; both must give the one-pass result exactly.
+    fleet = random_fleet(11, 3_000, 9, ties=True)
+    rng = np.random.default_rng(3)
+    y = fleet["y"].to_numpy() - np.where(rng.random(len(fleet)) < 0.08, 80.0, 0.0)
+    x, keys = fleet["x"].to_numpy(), fleet["series"].to_numpy()
+    y[rng.random(len(y)) < 0.01] = np.nan  # unusable rows stay unusable
+    noise = rng.choice([4.0, 8.0, np.nan], len(x))
+    direct, again, first = _both_ways(keys, x, y, noise, 0.95, 1.0)
+    pd.testing.assert_frame_equal(again, direct)
+    third = first["n_before"].to_numpy() == 2
+    new_steps = direct["step"].to_numpy() & ~first["step"].to_numpy()
+    assert (third & direct["judged"].to_numpy()).sum() > 100  # judged on the noise alone
+    assert new_steps.sum() > 10  # a step only the noise finds: its series run again
+
+
 def test_empty_input_and_a_series_tested_at_one_hour() -> None:
     assert trend.fit_ols([], [], []).empty and trend.fit_theil_sen([], [], []).empty
     assert trend.detect_steps([], [], []).empty
