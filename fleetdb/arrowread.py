@@ -61,7 +61,8 @@ def to_pandas(table: Any, categorical: tuple[str, ...] = ()) -> pd.DataFrame:
     return table.to_pandas()
 
 
-def read_sqlite_tables(path: str, frames: list[list[str]]) -> list[Any]:
+def read_sqlite_tables(path: str, frames: list[list[str]], *, narrow: bool = False,
+                       timestamps: tuple[str, ...] = ()) -> list[Any]:
     """Read several Arrow tables at once, each the rows of one or more queries.
 
     Every query runs in a child process of its own, all at the same time (on a machine
@@ -77,6 +78,11 @@ def read_sqlite_tables(path: str, frames: list[list[str]]) -> list[Any]:
     in ``COALESCE`` beside an ``IS NULL`` flag.
 
     :param frames: per table, its queries.
+    :param narrow: each integer column in the smallest integer type that holds its values
+        (chosen per query: the queries of one table may then differ in such types, which
+        :func:`pyarrow.concat_tables` is asked to unify).
+    :param timestamps: text columns to parse from ISO 8601 into timestamps in the child
+        (left as text where a value does not parse).
     :raises RuntimeError: when a child fails (its message included).
     """
     import pyarrow as pa
@@ -86,8 +92,10 @@ def read_sqlite_tables(path: str, frames: list[list[str]]) -> list[Any]:
     queries = [sql for group in frames for sql in group]
     outs = [f"{base}.{i}" for i in range(len(queries))]
     child = [sys.executable, "-m", "fleetdb._arrow_child", path]
+    options = (["--narrow"] if narrow else []) + [
+        arg for name in timestamps for arg in ("--timestamp", name)]
     try:
-        runs = [subprocess.Popen([*child, out, sql], stdout=subprocess.DEVNULL,
+        runs = [subprocess.Popen([*child, out, sql, *options], stdout=subprocess.DEVNULL,
                                  stderr=subprocess.PIPE, text=True)
                 for sql, out in zip(queries, outs, strict=True)]
         errors = [err for err, code in ((run.communicate()[1], run.returncode) for run in runs)
@@ -99,7 +107,8 @@ def read_sqlite_tables(path: str, frames: list[list[str]]) -> list[Any]:
             tables = [pa.ipc.open_file(pa.memory_map(out, "r")).read_all()
                       for out in outs[at:at + len(group)]]
             at += len(group)
-            result.append(pa.concat_tables(tables) if len(tables) > 1 else tables[0])
+            result.append(pa.concat_tables(tables, promote_options="permissive")
+                          if len(tables) > 1 else tables[0])
         return result
     finally:
         for leftover in (base, *outs):

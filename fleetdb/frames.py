@@ -80,51 +80,73 @@ def _arrow_source(engine: Engine, whole_fleet: bool) -> _ArrowRead | None:
     return None
 
 
-#: Nullable columns of the tests query, with the stand-in each takes for the Arrow read.
-_TEST_NULLABLE = {"t.battery_v": ("battery_v", "0.0"), "t.crank_rpm": ("crank_rpm", "0.0"),
-                  "t.engine_temp_c": ("engine_temp_c", "0.0"), "t.baro_kpa": ("baro_kpa", "0.0"),
-                  "t.throttle_open": ("throttle_open", "0"), "t.technician": ("technician", "''"),
-                  "t.note": ("note", "''"), "v.reason": ("void_reason", "''"),
-                  "v.voided_at": ("voided_at", "''")}
 _TESTS_FROM = " FROM test t LEFT JOIN test_void v ON v.test_id = t.id"
 
 
+#: The kinds of reading (models.READING_KINDS, sorted; the analysis need not import the
+#: models): the categories of the readings' ``kind``.
+KINDS = ("compression", "leakdown", "relative", "vacuum_cranking", "vacuum_idle", "wet")
+
 #: Columns of the tests frame that only the unit pages show (the analysis never reads them).
 DETAIL_COLUMNS = ("technician", "note", "source")
+_MEASURED = ("battery_v", "crank_rpm", "engine_temp_c", "baro_kpa")  # nullable REAL columns
+_TEXTS = ("technician", "note")  # nullable text details
 
 
-def _tests_sql(null_safe: bool, details: bool = True) -> str:
-    """The tests query; ``null_safe``: every nullable column as a stand-in plus a NULL flag.
-
-    ADBC infers a column's type from its first rows and fails on a later value of another
-    type, so the Arrow read never returns NULL; :func:`_restore_nulls` puts them back.
-    ``details``: with ``DETAIL_COLUMNS``.
-    """
-    columns = ["t.id AS test_id", "t.unit_id", "t.tested_at", "t.hours"]
-    for expr, (name, stand_in) in _TEST_NULLABLE.items():
-        if not details and name in DETAIL_COLUMNS:
-            continue
-        columns += ([f"COALESCE({expr}, {stand_in}) AS {name}", f"({expr} IS NULL) AS {name}__null"]
-                    if null_safe else [f"{expr} AS {name}"])
+def _tests_sql(details: bool = True) -> str:
+    """The tests query with their voids (``details``: with ``DETAIL_COLUMNS``)."""
+    columns = ["t.id AS test_id", "t.unit_id", "t.tested_at", "t.hours",
+               *(f"t.{name}" for name in _MEASURED), "t.throttle_open"]
     if details:
-        columns.insert(columns.index("t.note AS note") + 1 if not null_safe
-                       else columns.index("(t.note IS NULL) AS note__null") + 1, "t.source")
+        columns += [*(f"t.{name}" for name in _TEXTS), "t.source"]
+    columns += ["v.reason AS void_reason", "v.voided_at"]
     return "SELECT " + ", ".join(columns) + _TESTS_FROM
 
 
-def _restore_nulls(tests: pd.DataFrame) -> pd.DataFrame:
-    """Undo :func:`_tests_sql`'s stand-ins: NULL where the flag says so."""
-    for name, _ in _TEST_NULLABLE.values():
-        if f"{name}__null" not in tests:  # a column left out (``details``)
-            continue
-        null = tests.pop(f"{name}__null").to_numpy(dtype=bool)
-        column = tests[name]
-        if null.all():  # as the plain read gives a column of nothing but NULLs
-            tests[name] = pd.Series([None] * len(tests), index=tests.index, dtype=object)
-        elif pd.api.types.is_string_dtype(column.dtype):
-            tests[name] = column.where(~null)
-        else:
-            tests[name] = column.astype(float).where(~null)
+#: Stands in for NULL in the Arrow read's measurement columns: far outside any value the
+#: store accepts (validation bounds every measurement), and exact in a REAL.
+NULL_MEASUREMENT = -1e300
+
+
+def _arrow_tests_sql(details: bool = True) -> str:
+    """:func:`_tests_sql` for the Arrow read: no NULLs, no voids (read apart: few).
+
+    ADBC infers a column's type from its first rows and fails on a later value of another
+    type, so the Arrow read never returns NULL: a measurement reads ``NULL_MEASUREMENT``,
+    the throttle flag -1, a text detail '' beside an ``IS NULL`` flag.
+    :func:`_restore_nulls` puts the NULLs back.
+    """
+    columns = ["t.id AS test_id", "t.unit_id", "t.tested_at", "t.hours",
+               *(f"COALESCE(t.{name}, {NULL_MEASUREMENT!r}) AS {name}" for name in _MEASURED),
+               "COALESCE(t.throttle_open, -1) AS throttle_open"]
+    if details:
+        columns += [part for name in _TEXTS for part in (
+            f"COALESCE(t.{name}, '') AS {name}", f"(t.{name} IS NULL) AS {name}__null")]
+        columns.append("t.source")
+    return "SELECT " + ", ".join(columns) + " FROM test t"
+
+
+def _restore_nulls(tests: pd.DataFrame, voids: pd.DataFrame) -> pd.DataFrame:
+    """Undo :func:`_arrow_tests_sql`'s stand-ins, widen its narrowed integer ids and add
+    the voids: the columns and types of the plain read."""
+    for name in _MEASURED:
+        column = tests[name].to_numpy(dtype=float)
+        tests[name] = np.where(column == NULL_MEASUREMENT, np.nan, column)
+    throttle = tests["throttle_open"].to_numpy()
+    tests["throttle_open"] = pd.arrays.BooleanArray(throttle == 1, throttle < 0)
+    for name in _TEXTS:
+        if name in tests:
+            null = tests.pop(f"{name}__null").to_numpy(dtype=bool)
+            tests[name] = tests[name].where(~null)
+    for name in ("test_id", "unit_id"):
+        tests[name] = tests[name].astype(np.int64)
+    at = pd.Index(tests["test_id"]).get_indexer(voids["test_id"].to_numpy())
+    voids = voids[at >= 0]
+    at = at[at >= 0]
+    for name in ("void_reason", "voided_at"):
+        column = np.full(len(tests), None, dtype=object)
+        column[at] = voids[name].to_numpy(dtype=object)
+        tests[name] = column
     return tests
 
 
@@ -155,6 +177,7 @@ class RawFleet:
     tests: Any
     readings: Any
     as_of: pd.Timestamp | None
+    voids: pd.DataFrame | None = None  # test_id, void_reason, voided_at (Arrow read only)
 
     @property
     def reading_count(self) -> int:
@@ -198,15 +221,23 @@ def read(engine: Engine, unit_ids: list[int] | None = None,
                     "r.value_si AS value FROM reading r"
                     + (" JOIN test t ON t.id = r.test_id" + _unit_filter(unit_ids, "t.unit_id")
                        if unit_ids is not None else ""))
+    voids = None
     if arrow is not None:
-        # Three processes: the tests, and the readings in two halves by id.
+        # Three processes: the tests, and the readings in two halves by id (each kind as
+        # its number in KINDS); the voids apart, bounded alike.
         half, last = arrow.last_reading // 2, arrow.last_test
+        kind_code = ("CASE r.kind " + " ".join(f"WHEN '{k}' THEN {i}" for i, k in enumerate(KINDS))
+                     + " ELSE -1 END AS kind")
+        coded_sql = readings_sql.replace("r.kind", kind_code, 1)
         tests, readings = arrowread.read_sqlite_tables(arrow.path, [
-            [f"{_tests_sql(True, details)} WHERE t.id <= {last}"],
-            [f"{readings_sql} WHERE r.id <= {half} AND r.test_id <= {last}",
-             f"{readings_sql} WHERE r.id > {half} AND r.test_id <= {last}"]])
+            [f"{_arrow_tests_sql(details)} WHERE t.id <= {last}"],
+            [f"{coded_sql} WHERE r.id <= {half} AND r.test_id <= {last}",
+             f"{coded_sql} WHERE r.id > {half} AND r.test_id <= {last}"]],
+            narrow=True, timestamps=("tested_at",))
+        voids = _query(engine, "SELECT test_id, reason AS void_reason, voided_at FROM test_void "
+                       f"WHERE test_id <= {last}")
     else:
-        tests = _query(engine, _tests_sql(False, details) + _unit_filter(unit_ids, "t.unit_id"))
+        tests = _query(engine, _tests_sql(details) + _unit_filter(unit_ids, "t.unit_id"))
         readings = _query(engine, readings_sql)
 
     events = _query(engine, "SELECT id AS event_id, unit_id, date, hours, kind, cylinders, note "
@@ -217,7 +248,7 @@ def read(engine: Engine, unit_ids: list[int] | None = None,
     events["cylinders"] = [tuple(int(c) for c in s.split(";") if c) for s in events["cylinders"]]
     events["hours"] = events["hours"].astype(float)
     return RawFleet(families=families, units=units, events=events.reset_index(drop=True),
-                    tests=tests, readings=readings, as_of=as_of)
+                    tests=tests, readings=readings, as_of=as_of, voids=voids)
 
 
 def shape(raw: RawFleet, family_ids: list[int] | None = None) -> Frames:
@@ -238,8 +269,10 @@ def shape(raw: RawFleet, family_ids: list[int] | None = None) -> Frames:
         if family_ids is not None:
             tests = tests.filter(_member_mask(tests["unit_id"], units.index.to_numpy()))
             readings = readings.filter(_member_mask(readings["test_id"], tests["test_id"]))
-        tests = _restore_nulls(arrowread.to_pandas(tests))
-        readings = arrowread.to_pandas(readings, categorical=("kind",))
+        tests = _restore_nulls(arrowread.to_pandas(tests), raw.voids)
+        readings = arrowread.to_pandas(readings)
+        readings["test_id"] = readings["test_id"].astype(np.int64)
+        readings["kind"] = pd.Categorical.from_codes(readings["kind"].to_numpy(), KINDS)
         # Arrow's allocator keeps what the filters and conversions freed (about 200 MB
         # a worker at 20,000 units) unless asked to give it back.
         pa.default_memory_pool().release_unused()
@@ -272,8 +305,12 @@ def _member_mask(ids: Any, wanted: Any) -> np.ndarray:
 def _shape_readings(readings: pd.DataFrame, tests: pd.DataFrame) -> pd.DataFrame:
     """Readings of the tests kept (an ``as_of`` cut), in their analysis types."""
     readings = readings[_member_mask(readings["test_id"], tests.index)]
-    kinds = readings["kind"].astype("category")  # categories sorted, however it was read
-    readings["kind"] = kinds.cat.reorder_categories(sorted(kinds.cat.categories))
+    kinds = readings["kind"]
+    if not isinstance(kinds.dtype, pd.CategoricalDtype):
+        kinds = kinds.astype("category")
+    # The same categories however it was read: every kind, then any other found, sorted.
+    extra = sorted(set(kinds.cat.categories) - set(KINDS))
+    readings["kind"] = kinds.cat.set_categories([*KINDS, *extra])
     readings["cylinder"] = readings["cylinder"].astype("Int64").replace(0, pd.NA)
     readings["value"] = readings["value"].astype(float)
     return readings

@@ -5,7 +5,7 @@ from __future__ import annotations
 import pandas as pd
 from sqlalchemy.engine import Engine
 
-from fleetdb import arrowread, frames, ingest
+from fleetdb import arrowread, frames, ingest, logbook
 from tests.conftest import DATA
 
 SQL = ("SELECT r.test_id, r.kind, COALESCE(r.cylinder, 0) AS cylinder, r.value_si AS value "
@@ -34,7 +34,14 @@ def test_load_through_arrow_equals_plain(sqlite_url: str, monkeypatch) -> None: 
     migrate.upgrade(sqlite_url)
     engine = db.make_engine(sqlite_url)
     ingest.import_files(engine, [DATA / "fleet.csv", DATA / "tests.csv"])
+    # A logged test with a time to the microsecond and no conditions at all, then voided.
+    logged = logbook.log_test(engine, "T-101", "2024-06-01 09:15:30.250001", 1450, [
+        logbook.TypedReading("compression", c, v, "psi")
+        for c, v in ((1, "151"), (2, "149"), (3, "147"), (4, "146"))], by="test")
+    logbook.void_test(engine, logged, "gauge hose leaked", by="test")
     plain = frames.load(engine)
+    assert plain.tests["voided"].sum() == 1 and plain.tests["throttle_open"].isna().any()
+    assert (plain.tests["tested_at"].dt.microsecond == 250001).sum() == 1
     monkeypatch.setattr(frames, "ARROW_READ_MIN_ROWS", 1)
     fast = frames.load(engine)
     pd.testing.assert_frame_equal(fast.readings.reset_index(drop=True),
