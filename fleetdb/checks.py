@@ -200,6 +200,8 @@ class _Sink:
     def __init__(self, test_ids: np.ndarray, wanted: np.ndarray | None = None):
         self.test_ids = test_ids
         self.wanted = wanted  # per test row: write its findings (None: every test)
+        #: No finding is wanted: only the per-test summary is computed.
+        self.silent = wanted is not None and not wanted.any()
         self.parts: dict[str, list[np.ndarray]] = {c: [] for c in FINDING_COLUMNS}
 
     def add(self, rows: np.ndarray, code: str, severity: Any, cylinders: Any, template: str,
@@ -386,6 +388,9 @@ def check_tests(families: pd.DataFrame, tests: pd.DataFrame,
 
     validity = _validity(tests, fp, rows, raw, of, sink)
     summary = _compression(dry, wet, fp, validity, sink)
+    summary.index = tests.index
+    if sink.silent:  # the summary alone: no sentences wanted
+        return CheckResult(tests=summary, findings=sink.frame())
     _leakdown(rows[of["leakdown"]], cyl[of["leakdown"]], val[of["leakdown"]], sink)
     _relative(rows[of["relative"]], cyl[of["relative"]], val[of["relative"]], n, sink)
     idle_sl = _per_test(rows[of["vacuum_idle"]], val[of["vacuum_idle"]], n, "mean")
@@ -397,7 +402,6 @@ def check_tests(families: pd.DataFrame, tests: pd.DataFrame,
              "a vacuum leak, late ignition or valve timing, or worn rings.",
              {"vacuum_sl_kpa": idle_sl[hit], "vacuum_kpa": idle_raw[hit],
               "limit_kpa": DEFAULTS["idle_vacuum_min"].kpa}, {"src": _src("idle_vacuum_min")})
-    summary.index = tests.index
     return CheckResult(tests=summary, findings=sink.frame())
 
 
@@ -421,6 +425,11 @@ def _validity(tests: pd.DataFrame, fp: dict[str, np.ndarray], rows: np.ndarray, 
     limit = np.where(throttle_open, open_limit.kpa, DEFAULTS["cranking_vacuum_max"].kpa)
     restricted = fp["spark"] & (vacuum > limit)
     battery_artefact = weak & rpm_missing
+    found = {"slow": slow, "weak": weak, "cold": cold, "restricted": restricted,
+             "battery_artefact": battery_artefact,
+             "trustworthy": ~(slow | cold | restricted | battery_artefact)}
+    if sink.silent:
+        return found
 
     hit = np.flatnonzero(weak)
     src = np.where(fp["system_volts"][hit] >= 24, f"{_src(_battery_name(21))}; x2 for 24 V, "
@@ -464,9 +473,7 @@ def _validity(tests: pd.DataFrame, fp: dict[str, np.ndarray], rows: np.ndarray, 
              {"how": np.where(throttle_open[hit], "with the throttle held open", "while cranking"),
               "src": np.where(throttle_open[hit], _src(open_limit.name),
                               _src("cranking_vacuum_max"))})
-    return {"slow": slow, "weak": weak, "cold": cold, "restricted": restricted,
-            "battery_artefact": battery_artefact,
-            "trustworthy": ~(slow | cold | restricted | battery_artefact)}
+    return found
 
 
 def _compression(dry: np.ndarray, wet: np.ndarray, fp: dict[str, np.ndarray],
@@ -484,6 +491,17 @@ def _compression(dry: np.ndarray, wet: np.ndarray, fp: dict[str, np.ndarray],
     ratio = np.divide(lowest, highest, out=np.full(len(count), np.nan), where=has)
     spread = highest - lowest
     trust = validity["trustworthy"]
+    level = np.fmax(fp["min_kpa"], _v("all_low_fraction") * fp["expected"])
+    all_low = (count >= np.maximum(2, fp["cylinders"])) & (highest < level)
+    summary = pd.DataFrame({
+        "trustworthy": trust, "weak_battery": validity["weak"], "slow_cranking": validity["slow"],
+        "cold_engine": validity["cold"], "intake_restriction": validity["restricted"],
+        "cylinders_measured": count, "dry_min_kpa": lowest, "dry_max_kpa": highest,
+        "dry_mean_kpa": mean, "dry_ratio": ratio, "dry_spread_kpa": spread,
+        "lowest_cylinder": pd.Series(low_i + 1, dtype="Int64").where(has).array,
+        "all_low": all_low})
+    if sink.silent:
+        return summary
     rule, mr, md = fp["rule"], fp["min_ratio"], fp["max_diff"]
 
     def limit_text(hit: np.ndarray) -> dict[str, Any]:
@@ -530,8 +548,6 @@ def _compression(dry: np.ndarray, wet: np.ndarray, fp: dict[str, np.ndarray],
                                 _median_of_others(dry[maybe]))
     rel_low = valid & np.where((rule == 1)[:, None], reference - dry > (md * (1 + _EPS))[:, None],
                                dry < mr[:, None] * reference * (1 - _EPS))
-    level = np.fmax(fp["min_kpa"], _v("all_low_fraction") * fp["expected"])
-    all_low = (count >= np.maximum(2, fp["cylinders"])) & (highest < level)
     rel_limit = np.where((rule == 1)[:, None], reference - md[:, None], mr[:, None] * reference)
     _pairs_and_single(rel_low | (min_low & (trust & ~all_low)[:, None]), rel_low, dry, reference,
                       rel_limit, highest, fp, sink)
@@ -563,13 +579,7 @@ def _compression(dry: np.ndarray, wet: np.ndarray, fp: dict[str, np.ndarray],
                                   _src("expected_from_minimum"))})
 
     _wet(dry, wet, rel_low | min_low | all_low[:, None], fp, sink)
-    return pd.DataFrame({
-        "trustworthy": trust, "weak_battery": validity["weak"], "slow_cranking": validity["slow"],
-        "cold_engine": validity["cold"], "intake_restriction": validity["restricted"],
-        "cylinders_measured": count, "dry_min_kpa": lowest, "dry_max_kpa": highest,
-        "dry_mean_kpa": mean, "dry_ratio": ratio, "dry_spread_kpa": spread,
-        "lowest_cylinder": pd.Series(low_i + 1, dtype="Int64").where(has).array,
-        "all_low": all_low})
+    return summary
 
 
 def _wet(dry: np.ndarray, wet: np.ndarray, low: np.ndarray, fp: dict[str, np.ndarray],
