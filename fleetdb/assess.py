@@ -257,48 +257,55 @@ def _fit_frame(pts: pd.DataFrame, rows: np.ndarray, fams: pd.DataFrame) -> pd.Da
     A cylinder's limit is the family minimum and its step level Bonferroni over the
     family's cylinders; the spread's limit is the family's ``min_ratio``.
     """
-    sel = pts.loc[rows, ["series", "group", "hours", "value_sl", "family_id", "cylinder"]]
-    family = sel["family_id"].to_numpy()
-    is_spread = sel["cylinder"].to_numpy() == SPREAD_CYLINDER
-    limit = np.where(is_spread, fams["min_ratio"].reindex(family).to_numpy(float),
-                     fams["min_compression_kpa"].reindex(family).to_numpy(float))
-    k = fams["cylinders"].reindex(family).to_numpy(float)
+    at = np.flatnonzero(rows)
+
+    def col(name: str, dtype: Any = None) -> np.ndarray:
+        return pts[name].to_numpy(dtype=dtype)[at]
+
+    fam_row = fams.index.get_indexer(col("family_id"))
+
+    def of_family(name: str) -> np.ndarray:  # NaN for a family not in the frame
+        return np.where(fam_row >= 0, fams[name].to_numpy(float)[fam_row], np.nan)
+
+    is_spread = col("cylinder") == SPREAD_CYLINDER
+    limit = np.where(is_spread, of_family("min_ratio"), of_family("min_compression_kpa"))
+    k = of_family("cylinders")
     return pd.DataFrame({
-        "series": sel["series"].to_numpy(np.int64), "group": sel["group"].to_numpy(np.int64),
-        "hours": sel["hours"].to_numpy(), "value_sl": sel["value_sl"].to_numpy(),
-        "limit": limit,
+        "series": col("series", np.int64), "group": col("group", np.int64),
+        "hours": col("hours"), "value_sl": col("value_sl"), "limit": limit,
         "step_level": np.where(is_spread, 1 - FAMILY_ALPHA, 1 - FAMILY_ALPHA / k),
-        "min_drop": np.where(is_spread, MIN_DROP_RATIO, MIN_DROP_FRACTION * limit)},
-        index=sel.index)
-
-
-_STEP_COLUMNS = ["step", "expected", "lower_bound"]
+        "min_drop": np.where(is_spread, MIN_DROP_RATIO, MIN_DROP_FRACTION * limit)})
 
 
 def _fit_by_group(pts: pd.DataFrame, in_fit: np.ndarray, fams: pd.DataFrame,
-                  family_params: pd.DataFrame | None) -> tuple[pd.DataFrame, pd.DataFrame]:
+                  family_params: pd.DataFrame | None) -> tuple[pd.DataFrame, dict]:
     """``fleetfit.fit_fleet`` of the points in the fits, one pooling group (family, or a
     family's spread) at a time on a large fleet.
 
     Every step of the fit works within a series or a group, so this gives the same result
     as one call over the fleet while holding only one group's working arrays at a time.
-    :returns: the fits and, per point in the fits (in order), its step judgement.
+    :returns: the fits and, per point (every row of ``pts``), its step judgement: step
+        (False out of the fits), expected and lower_bound (NaN out of the fits).
     """
-    def fit(rows: np.ndarray) -> tuple[pd.DataFrame, pd.DataFrame]:
+    marks = {"step": np.zeros(len(pts), dtype=bool), "expected": np.full(len(pts), np.nan),
+             "lower_bound": np.full(len(pts), np.nan)}
+
+    def fit(rows: np.ndarray) -> pd.DataFrame:
         fits, steps = fleetfit.fit_fleet(
             _fit_frame(pts, rows, fams), series="series", group="group", x="hours",
             y="value_sl", limit="limit", step_confidence="step_level", min_drop="min_drop",
             family_params=family_params, return_points=True)
-        return fits, steps[_STEP_COLUMNS]
+        at = np.flatnonzero(rows)
+        marks["step"][at] = steps["step"].eq(True).to_numpy()  # a row the fit left out: no
+        marks["expected"][at] = steps["expected"].to_numpy(dtype=float)
+        marks["lower_bound"][at] = steps["lower_bound"].to_numpy(dtype=float)
+        return fits
 
     groups = pts["group"].to_numpy()
     keys = np.unique(groups[in_fit])
     if in_fit.sum() < FIT_BY_GROUP_ROWS or len(keys) < 2:
-        return fit(in_fit)
-    parts = [fit(in_fit & (groups == key)) for key in keys]
-    fits = pd.concat([f for f, _ in parts]).sort_index()
-    steps = pd.concat([p for _, p in parts]).reindex(pts.index[in_fit])
-    return fits, steps
+        return fit(in_fit), marks
+    return pd.concat([fit(in_fit & (groups == key)) for key in keys]).sort_index(), marks
 
 
 def assess(fr: Frames, as_of: pd.Timestamp, *, horizon_weeks: int = HORIZON_WEEKS,
@@ -317,14 +324,8 @@ def assess(fr: Frames, as_of: pd.Timestamp, *, horizon_weeks: int = HORIZON_WEEK
     res = _check(fr, all_findings)
     pts = _series_points(fr, res, as_of)
     in_fit = pts["in_fit"].to_numpy(dtype=bool)
-    fits, steps = _fit_by_group(pts, in_fit, fr.families, family_params)
-    step = np.zeros(len(pts), dtype=bool)
-    expected, lower_bound = np.full(len(pts), np.nan), np.full(len(pts), np.nan)
-    if in_fit.any():
-        step[in_fit] = steps["step"].eq(True).to_numpy()  # a row the fit dropped: no step
-        expected[in_fit] = steps["expected"].to_numpy(dtype=float)
-        lower_bound[in_fit] = steps["lower_bound"].to_numpy(dtype=float)
-    pts = pts.assign(step=step, expected=expected, lower_bound=lower_bound)
+    fits, marks = _fit_by_group(pts, in_fit, fr.families, family_params)
+    pts = pts.assign(**marks)
     keys = fits.index.to_numpy(dtype=np.int64)
     fits = fits.assign(unit_id=keys // SERIES_STRIDE, cylinder=(keys % SERIES_STRIDE) // 1000,
                        event_seg=keys % 1000)

@@ -108,7 +108,9 @@ def fit_fleet(
     """
     extra = [c for c in (step_confidence, min_drop) if c]
     data = readings[[series, group, x, y, limit, *extra]]
-    data = data[data[series].notna() & np.isfinite(data[x]) & np.isfinite(data[y])]
+    usable = (data[series].notna() & np.isfinite(data[x]) & np.isfinite(data[y])).to_numpy()
+    data = data[usable]
+    position = np.flatnonzero(usable)  # of each row of data, in readings
     if data[group].isna().any():
         raise ValueError("every reading needs a group (engine family)")
     if data.empty:
@@ -121,7 +123,7 @@ def fit_fleet(
     # in, so that its two passes and Theil-Sen find the rows already sorted.
     order = np.lexsort((data[x].to_numpy(float), codes))
     if not (order[1:] > order[:-1]).all():
-        data, codes = data.iloc[order], codes[order]
+        data, codes, position = data.iloc[order], codes[order], position[order]
     del order
     g = len(keys)
     xa, ya = data[x].to_numpy(float), data[y].to_numpy(float)
@@ -212,8 +214,11 @@ def fit_fleet(
     result = pd.concat([out, pool.set_axis(keys)], axis=1)[FLEET_COLUMNS]
     if not return_points:
         return result
-    points = steps.set_axis(data.index)
-    return result, points.reindex(readings.index)
+    if len(position) < len(readings):  # rows left out: NaN in their place
+        return result, steps.set_axis(data.index).reindex(readings.index)
+    back = np.empty_like(position)
+    back[position] = np.arange(len(position))
+    return result, steps.take(back).set_axis(readings.index)
 
 
 def _pool_with(pool: pd.DataFrame, external: pd.DataFrame, family: np.ndarray,
