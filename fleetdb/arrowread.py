@@ -46,19 +46,20 @@ def read_sqlite_many(path: str, frames: list[list[str]], *,
     return [to_pandas(table, categorical) for table in read_sqlite_tables(path, frames)]
 
 
-def to_pandas(table: Any, categorical: tuple[str, ...] = ()) -> pd.DataFrame:
+def to_pandas(table: Any, categorical: tuple[str, ...] = (), *, pool: Any = None) -> pd.DataFrame:
     """An Arrow table as a DataFrame.
 
     :param categorical: text columns to return as pandas categoricals (dictionary-encoded
         while still in Arrow, so no Python string is made per row).
+    :param pool: the Arrow memory pool to convert in (None: Arrow's default).
     """
     import pyarrow.compute as pc
 
     for name in categorical:
         if name in table.column_names:
             table = table.set_column(table.column_names.index(name), name,
-                                     pc.dictionary_encode(table[name]))
-    return table.to_pandas()
+                                     pc.dictionary_encode(table[name], memory_pool=pool))
+    return table.to_pandas(memory_pool=pool)
 
 
 def read_sqlite_tables(path: str, frames: list[list[str]], *, narrow: bool = False,

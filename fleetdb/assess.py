@@ -234,7 +234,7 @@ def _series_points(fr: Frames, res: checks.CheckResult, as_of: pd.Timestamp) -> 
         "series": unit_id.astype(np.int64) * SERIES_STRIDE + cylinder * 1000 + event_seg,
         # The pooling group of a spread series is its own (negative) group per family.
         "group": _narrow(np.where(cylinder == SPREAD_CYLINDER, -1 - family_id, family_id)),
-        "current": event_seg == current_seg})
+        "current": event_seg == current_seg}, copy=False)  # fresh arrays: no block copies
     return pts
 
 
@@ -274,7 +274,8 @@ def _fit_frame(pts: pd.DataFrame, rows: np.ndarray, fams: pd.DataFrame) -> pd.Da
         "series": col("series", np.int64), "group": col("group", np.int64),
         "hours": col("hours"), "value_sl": col("value_sl"), "limit": limit,
         "step_level": np.where(is_spread, 1 - FAMILY_ALPHA, 1 - FAMILY_ALPHA / k),
-        "min_drop": np.where(is_spread, MIN_DROP_RATIO, MIN_DROP_FRACTION * limit)})
+        "min_drop": np.where(is_spread, MIN_DROP_RATIO, MIN_DROP_FRACTION * limit)},
+        copy=False)
 
 
 def _fit_by_group(pts: pd.DataFrame, in_fit: np.ndarray, fams: pd.DataFrame,

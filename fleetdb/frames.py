@@ -265,12 +265,18 @@ def shape(raw: RawFleet, family_ids: list[int] | None = None) -> Frames:
     arrow = not isinstance(tests, pd.DataFrame)
     if arrow:
         import pyarrow as pa
+        import pyarrow.compute as pc
 
+        # The frames live in the C heap (malloc), like every array made after them, so
+        # memory freed by either serves the other (see fleetdb.malloc).
+        pool = pa.system_memory_pool()
         if family_ids is not None:
-            tests = tests.filter(_member_mask(tests["unit_id"], units.index.to_numpy()))
-            readings = readings.filter(_member_mask(readings["test_id"], tests["test_id"]))
-        tests = _restore_nulls(arrowread.to_pandas(tests), raw.voids)
-        readings = arrowread.to_pandas(readings)
+            tests = pc.filter(tests, _member_mask(tests["unit_id"], units.index.to_numpy()),
+                              memory_pool=pool)
+            readings = pc.filter(readings, _member_mask(readings["test_id"], tests["test_id"]),
+                                 memory_pool=pool)
+        tests = _restore_nulls(arrowread.to_pandas(tests, pool=pool), raw.voids)
+        readings = arrowread.to_pandas(readings, pool=pool)
         readings["test_id"] = readings["test_id"].astype(np.int64)
         readings["kind"] = pd.Categorical.from_codes(readings["kind"].to_numpy(), KINDS)
         # Arrow's allocator keeps what the filters and conversions freed (about 200 MB

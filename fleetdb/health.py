@@ -195,6 +195,9 @@ def _store_family_params(conn: Connection, params: pd.DataFrame, week: dt.date,
 #: From this many readings a full refresh splits the fleet by engine family over the
 #: machine's cores (see :func:`_assess_split`).
 PARALLEL_MIN_READINGS = 300_000
+#: Heap mapped ahead of an assessment, per reading (it grows by about 275 B a reading at
+#: 20,000 units; see fleetdb.malloc.prefault).
+HEAP_PER_READING = 300
 
 
 def _cores() -> int:
@@ -204,16 +207,22 @@ def _cores() -> int:
         return os.cpu_count() or 1
 
 
+def _family_work(raw: frames.RawFleet) -> dict[int, float]:
+    """Per engine family with units, its work: its tests times its cylinders (about its
+    readings)."""
+    tests = pd.Series(raw.test_families()).value_counts()
+    cylinders = raw.families["cylinders"].astype(float)
+    present = np.unique(raw.units["family_id"].to_numpy())
+    return {int(f): float(tests.get(f, 0)) * float(cylinders.get(f, 1.0)) for f in present}
+
+
 def _family_bins(raw: frames.RawFleet, n: int) -> list[list[int]]:
     """The fleet's families in at most ``n`` bins of about equal work, heaviest first.
 
     A family's work is counted as its tests times its cylinders (about its readings);
     families are placed greedily, largest first, into the lightest bin.
     """
-    tests = pd.Series(raw.test_families()).value_counts()
-    cylinders = raw.families["cylinders"].astype(float)
-    present = np.unique(raw.units["family_id"].to_numpy())
-    weight = {int(f): float(tests.get(f, 0)) * float(cylinders.get(f, 1.0)) for f in present}
+    weight = _family_work(raw)
     bins: list[list[int]] = [[] for _ in range(max(1, n))]
     load = [0.0] * len(bins)
     for fam in sorted(weight, key=lambda f: (-weight[f], f)):
@@ -242,6 +251,9 @@ def _assess_part(raw: list[frames.RawFleet], families: list[int] | None,
     Only what the snapshot needs outlives the assessment: the frames, checks and wear
     points are freed before the rows are built.
     """
+    # The frames and the assessment's working arrays take about this much heap.
+    malloc.prefault(HEAP_PER_READING * int(sum(
+        w for f, w in _family_work(raw[0]).items() if families is None or f in families)))
     result = assess_mod.assess(frames.shape(raw.pop(), families), moment)
     units, reasons, params = result.units, result.reasons, result.family_params
     del result

@@ -37,3 +37,28 @@ def test_roomy_keeps_freed_arrays_and_the_defaults_come_back() -> None:
         assert again[-1] == SIZE // 8 - 1
         del again
     assert _rss_kept_after_free() < SIZE // 4  # defaults restored, spare memory trimmed
+
+
+@pytest.mark.skipif(malloc._glibc() is None or not os.path.exists("/proc/self/statm"),
+                    reason="glibc on Linux only")
+def test_prefault_maps_the_heap_that_later_arrays_use() -> None:
+    # Reference: madvise(2) MADV_POPULATE_WRITE (Linux 5.14) maps the pages at once; the
+    # process's minor-fault count (getrusage(2) ru_minflt) shows whether arrays made
+    # afterwards still fault their pages in one by one.
+    import resource
+
+    def faults() -> int:
+        return resource.getrusage(resource.RUSAGE_SELF).ru_minflt
+
+    with malloc.roomy():
+        assert malloc.prefault(1 << 20) == 0  # under one chunk: nothing to do
+        before = _rss()
+        mapped = malloc.prefault(4 * SIZE)
+        if mapped == 0:
+            pytest.skip("MADV_POPULATE_WRITE is not available on this kernel")
+        assert mapped > 3 * SIZE and _rss() - before > 3 * SIZE
+        start = faults()
+        blocks = [np.ones(SIZE // 8 // 2) for _ in range(6)]  # 3 x SIZE in all
+        assert sum(float(b.sum()) for b in blocks) == 3 * SIZE // 8
+        assert faults() - start < (3 * SIZE // 4096) // 10  # not one fault a page
+        del blocks
