@@ -12,10 +12,12 @@ from __future__ import annotations
 import datetime as dt
 import json
 import multiprocessing as mp
+import multiprocessing.connection as mp_connection
 import os
 import sys
 import threading
 import traceback
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
@@ -195,6 +197,9 @@ def _store_family_params(conn: Connection, params: pd.DataFrame, week: dt.date,
 #: From this many readings a full refresh splits the fleet by engine family over the
 #: machine's cores (see :func:`_assess_split`).
 PARALLEL_MIN_READINGS = 300_000
+#: A unit's own work (its reasons, sentences, snapshot row, series) as many readings'
+#: (measured at 20,000 units: about 0.1 ms a unit beside 1.6 us a reading).
+UNIT_WORK = 60
 #: Heap mapped ahead of an assessment, per reading (it grows by about 275 B a reading at
 #: 20,000 units; see fleetdb.malloc.prefault).
 HEAP_PER_READING = 300
@@ -207,20 +212,21 @@ def _cores() -> int:
         return os.cpu_count() or 1
 
 
-def _family_work(raw: frames.RawFleet) -> dict[int, float]:
-    """Per engine family with units, its work: its tests times its cylinders (about its
-    readings)."""
+def _family_work(raw: frames.RawFleet, per_unit: float = UNIT_WORK) -> dict[int, float]:
+    """Per engine family with units, its work in readings: its tests times its cylinders
+    (about its readings), plus ``per_unit`` for each of its units."""
     tests = pd.Series(raw.test_families()).value_counts()
+    units = raw.units["family_id"].value_counts()
     cylinders = raw.families["cylinders"].astype(float)
-    present = np.unique(raw.units["family_id"].to_numpy())
-    return {int(f): float(tests.get(f, 0)) * float(cylinders.get(f, 1.0)) for f in present}
+    return {int(f): float(tests.get(f, 0)) * float(cylinders.get(f, 1.0)) + per_unit * float(n)
+            for f, n in units.items()}
 
 
 def _family_bins(raw: frames.RawFleet, n: int) -> list[list[int]]:
     """The fleet's families in at most ``n`` bins of about equal work, heaviest first.
 
-    A family's work is counted as its tests times its cylinders (about its readings);
-    families are placed greedily, largest first, into the lightest bin.
+    A family's work is counted by :func:`_family_work`; families are placed greedily,
+    largest first, into the lightest bin.
     """
     weight = _family_work(raw)
     bins: list[list[int]] = [[] for _ in range(max(1, n))]
@@ -253,7 +259,8 @@ def _assess_part(raw: list[frames.RawFleet], families: list[int] | None,
     """
     # The frames and the assessment's working arrays take about this much heap.
     malloc.prefault(HEAP_PER_READING * int(sum(
-        w for f, w in _family_work(raw[0]).items() if families is None or f in families)))
+        w for f, w in _family_work(raw[0], per_unit=0).items()
+        if families is None or f in families)))
     result = assess_mod.assess(frames.shape(raw.pop(), families), moment)
     units, reasons, params = result.units, result.reasons, result.family_params
     del result
@@ -273,14 +280,16 @@ def _worker(send: Any, holder: list[frames.RawFleet], families: list[int],
 
 
 def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: tuple,
-                  workers: int | None) -> _Part:
-    """Assess the fleet read into ``holder`` (taken out of it, so its memory can be freed).
+                  workers: int | None, write: Callable[[list[tuple]], None]) -> _Part:
+    """Assess the fleet read into ``holder`` (taken out of it, so its memory can be freed),
+    handing the snapshot rows to ``write`` as they come.
 
     A large fleet is split by engine family over the machine's cores: every statistic
     the analysis pools is pooled within a family, so the parts give exactly the
     whole-fleet result. The read happens once, before the split; each worker is a fork
     that inherits the rows read without copying them, shapes its families' frames,
-    assesses them, builds their snapshot rows and sends them back. A fork is only taken
+    assesses them, builds their snapshot rows and sends them back; the parent writes
+    each worker's rows as they arrive, while the others still work. A fork is only taken
     from a single-threaded process (the command line), never inside the dashboard's
     server; there, and on a small fleet, the assessment runs in-process.
     """
@@ -294,38 +303,73 @@ def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: t
     can_fork = sys.platform == "linux" and threading.active_count() == 1
     bins = _family_bins(holder[0], workers) if workers > 1 and can_fork else []
     if len(bins) < 2:
-        return _assess_part(holder, None, moment, stamps)
+        part = _assess_part(holder, None, moment, stamps)
+        write(part.rows)
+        part.rows = []
+        return part
     ctx = mp.get_context("fork")
-    running = []
+    running: dict[Any, tuple[Any, list[int]]] = {}
+    parts: list[_Part] = []
     try:
-        for families in bins[1:]:
+        for families in bins:
             receive, send = ctx.Pipe(duplex=False)
             proc = ctx.Process(target=_worker, args=(send, holder, families, moment, stamps),
                                daemon=True)
             proc.start()
             send.close()
-            running.append((proc, receive, families))
-        parts = [_assess_part(holder, bins[0], moment, stamps)]
-        for proc, receive, families in running:
-            try:
-                status, payload = receive.recv()
-            except EOFError:  # it died without a word (killed, out of memory)
+            running[receive] = (proc, families)
+        holder.clear()  # the workers have their own; the parent only writes from here
+        waiting = dict(running)
+        while waiting:
+            for receive in mp_connection.wait(list(waiting)):
+                proc, families = waiting.pop(receive)
+                try:
+                    status, payload = receive.recv()
+                except EOFError:  # it died without a word (killed, out of memory)
+                    proc.join()
+                    status, payload = "error", f"the worker ended with exit code {proc.exitcode}"
                 proc.join()
-                status, payload = "error", f"the worker ended with exit code {proc.exitcode}"
-            proc.join()
-            if status != "ok":
-                raise RuntimeError(f"assessing engine families {families} failed:\n{payload}")
-            parts.append(payload)
+                if status != "ok":
+                    raise RuntimeError(f"assessing engine families {families} failed:\n{payload}")
+                write(payload.rows)
+                payload.rows = []
+                parts.append(payload)
     finally:  # whatever failed, no worker is left behind, waiting to send
-        for proc, receive, _ in running:
+        for receive, (proc, _) in running.items():
             if proc.is_alive():
                 proc.terminate()
             proc.join()
             receive.close()
-    return _Part(rows=sorted((row for p in parts for row in p.rows), key=lambda r: r[0]),
-                 levels=pd.concat([p.levels for p in parts]).sort_index(),
+    return _Part(rows=[], levels=pd.concat([p.levels for p in parts]).sort_index(),
                  family_params=pd.concat([p.family_params for p in parts]).sort_index(),
                  processes=len(parts))
+
+
+class _SnapshotWriter:
+    """One transaction for a full refresh's snapshot, begun at its first write (after the
+    workers are forked: no connection is open across a fork)."""
+
+    def __init__(self, engine: Engine) -> None:
+        self.engine, self.conn, self.transaction = engine, None, None
+
+    def _connection(self) -> Connection:
+        if self.conn is None:
+            self.conn = self.engine.connect()
+            self.transaction = self.conn.begin()
+        return self.conn
+
+    def write(self, rows: list[tuple]) -> None:
+        _write_snapshot(self._connection(), rows)
+
+    def commit(self, family_params: pd.DataFrame, week: dt.date, at: Any) -> None:
+        _store_family_params(self._connection(), family_params, week, at)
+        self.transaction.commit()
+        self.conn.close()
+
+    def rollback(self) -> None:
+        if self.conn is not None:
+            self.transaction.rollback()
+            self.conn.close()
 
 
 def refresh_fleet(engine: Engine, as_of: dt.date | None = None, *,
@@ -342,12 +386,15 @@ def refresh_fleet(engine: Engine, as_of: dt.date | None = None, *,
     week = week_start(day)
     with engine.connect() as conn:
         at = stamp(conn)
+    writer = _SnapshotWriter(engine)
     with malloc.roomy():  # many large temporary arrays: see fleetdb.malloc
-        part = _assess_split([frames.read(engine, as_of=moment, details=False)], moment,
-                             (week, day, at), workers)
-        with engine.begin() as conn:
-            _write_snapshot(conn, part.rows)
-            _store_family_params(conn, part.family_params, week, at)
+        try:
+            part = _assess_split([frames.read(engine, as_of=moment, details=False)], moment,
+                                 (week, day, at), workers, writer.write)
+            writer.commit(part.family_params, week, at)
+        except BaseException:
+            writer.rollback()
+            raise
     counts = part.levels.value_counts()
     return {"week_start": week.isoformat(), "units": len(part.levels),
             "counts": {lvl: int(counts.get(lvl, 0)) for lvl in LEVELS},

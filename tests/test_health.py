@@ -203,8 +203,9 @@ def test_family_bins_balance_the_work(demo: Engine) -> None:
         assert len(bins) == min(n, len(families))
     # Greedy largest-first into the lightest bin: no bin is more than the heaviest family
     # above the lightest bin.
-    weight = (fr.tests["family_id"].value_counts()
-              * fr.families["cylinders"].reindex(fr.tests["family_id"].value_counts().index))
+    tests = fr.tests["family_id"].value_counts()
+    weight = (tests * fr.families["cylinders"].reindex(tests.index)
+              + health.UNIT_WORK * fr.units["family_id"].value_counts().reindex(tests.index))
     bins = health._family_bins(raw, 2)
     loads = [sum(float(weight.get(f, 0)) for f in b) for b in bins]
     assert max(loads) - min(loads) <= float(weight.max())
@@ -234,15 +235,15 @@ def test_split_refresh_on_each_engine(engine: Engine, monkeypatch) -> None:  # n
 @pytest.mark.parametrize(("failure", "error", "match"), [
     ("a worker raises", RuntimeError, r"(?s)assessing engine families.*planted failure"),
     ("a worker dies", RuntimeError, "the worker ended with exit code 9"),
-    ("the parent raises", ValueError, "planted failure in the parent"),
+    ("the parent fails to write", ValueError, "planted failure in the parent"),
 ])
 def test_a_failed_part_fails_the_refresh_writes_nothing_and_leaves_no_worker(
         demo_file: Path, tmp_path: Path, monkeypatch, failure: str, error: type,  # noqa: ANN001
         match: str) -> None:
     # A worker's exception comes back with its traceback; a worker killed outright (out of
-    # memory, say) sends nothing, and its exit code is reported; when the parent's own part
-    # fails, the workers still running are stopped, not left waiting to send. In every case
-    # nothing is written.
+    # memory, say) sends nothing, and its exit code is reported; when the parent fails to
+    # write the first part that came back, the workers still running are stopped, not left
+    # waiting to send. In every case nothing is written (one transaction).
     import multiprocessing
     import os
     import time
@@ -258,13 +259,16 @@ def test_a_failed_part_fails_the_refresh_writes_nothing_and_leaves_no_worker(
             raise ValueError("planted failure")
         if failure == "a worker dies" and in_worker:
             os._exit(9)
-        if failure == "the parent raises":
-            if not in_worker:
-                raise ValueError("planted failure in the parent")
-            time.sleep(120)  # a worker still busy when the parent gives up
+        if failure == "the parent fails to write" and 1 not in set(fr.units["family_id"]):
+            time.sleep(120)  # workers still busy when the parent gives up
         return real(fr, *args, **kwargs)
 
+    def planted_write(conn, rows) -> None:  # noqa: ANN001
+        raise ValueError("planted failure in the parent")
+
     monkeypatch.setattr(assess, "assess", planted)
+    if failure == "the parent fails to write":
+        monkeypatch.setattr(health, "_write_snapshot", planted_write)
     with pytest.raises(error, match=match):
         health.refresh_fleet(engine, AS_OF + dt.timedelta(days=7), workers=3)
     assert multiprocessing.active_children() == []
