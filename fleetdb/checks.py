@@ -486,7 +486,12 @@ def _compression(dry: np.ndarray, wet: np.ndarray, fp: dict[str, np.ndarray],
     low_i = as_low.argmin(axis=1)
     lowest = np.where(has, as_low.min(axis=1), np.nan)
     highest = np.where(has, np.where(valid, dry, -np.inf).max(axis=1), np.nan)
-    total = np.where(valid, dry, 0.0).sum(axis=1)
+    # Summed column by column, left to right: the same float sum however many cylinders
+    # the widest engine in the frame has (numpy's row sum groups its additions by the row's
+    # width, so a 4-cylinder test summed beside 8-cylinder ones could differ in the last bit).
+    total = np.zeros(len(count))
+    for column in np.where(valid, dry, 0.0).T:
+        total += column
     mean = np.divide(total, count, out=np.full(len(count), np.nan), where=has)
     ratio = np.divide(lowest, highest, out=np.full(len(count), np.nan), where=has)
     spread = highest - lowest

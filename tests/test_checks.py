@@ -525,3 +525,22 @@ def test_empty_and_unknown_inputs():
     assert result.tests["lowest_cylinder"].isna().all()
     with pytest.raises(InvalidValue):
         checks.check_tests(families.drop(index=3), tests, readings)
+
+
+def test_summary_of_a_test_does_not_depend_on_the_other_engines_checked_with_it():
+    # Self-consistency (the split refresh assesses engine families in separate processes):
+    # a four's mean, judged beside an eight, is the same float as judged alone. These
+    # invented readings sum to 3966.4 left to right, but to 3966.3999999999996 when numpy
+    # sums a row padded to eight cylinders (it groups the additions by the row's width).
+    four = [953.5, 1085.1, 843.2, 1084.6]
+    families = pd.DataFrame([family(), family(name="demo-eight", cylinders=8,
+                                              banks="1-3-5-7/2-4-6-8")],
+                            index=pd.Index([1, 2], name="family_id"))
+    tests = pd.DataFrame([{**conditions(), "family_id": 1}, {**conditions(), "family_id": 2}],
+                         index=pd.Index([10, 20], name="test_id"))
+    readings = pd.DataFrame([{**r, "test_id": 10} for r in dry(*four, unit="kPa")]
+                            + [{**r, "test_id": 20} for r in dry(*[1000.0] * 8, unit="kPa")])
+    both = checks.check_tests(families, tests, readings).tests
+    alone = checks.check_tests(families, tests.loc[[10]], readings[readings["test_id"] == 10]).tests
+    assert both.loc[10, "dry_mean_kpa"] == alone.loc[10, "dry_mean_kpa"] == (
+        ((four[0] + four[1]) + four[2]) + four[3]) / 4
