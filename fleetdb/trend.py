@@ -236,9 +236,9 @@ def _theil_sen_block(xm: np.ndarray, ym: np.ndarray, z: float) -> dict[str, np.n
     """Theil-Sen for a block of series of equal length, one series per row."""
     m, size = xm.shape
     iu, ju = np.triu_indices(size, k=1)
-    dx = xm[:, ju] - xm[:, iu]
+    dx = xm.take(ju, axis=1) - xm.take(iu, axis=1)  # take: faster than fancy indexing
     with np.errstate(divide="ignore", invalid="ignore"):
-        slopes = (ym[:, ju] - ym[:, iu]) / dx
+        slopes = (ym.take(ju, axis=1) - ym.take(iu, axis=1)) / dx
     slopes[dx == 0] = np.nan
     slopes.sort(axis=1)  # NaN (pairs at one hour) go last
     valid = np.count_nonzero(dx != 0, axis=1)
