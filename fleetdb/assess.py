@@ -404,8 +404,11 @@ def _reason_rows(unit_ids: Any, code: str, level: str, texts: Any, numbers: Any,
 
     def many(v: Any) -> list:
         return list(v) if isinstance(v, (list, np.ndarray, pd.Series)) else [v] * n
-    return pd.DataFrame({"unit_id": unit_ids, "code": code, "level": level,
-                         "text": many(texts), "numbers": many(numbers),
+
+    def text(v: Any) -> pd.Series:  # plain Python strings: no Arrow string column to build
+        return pd.Series(many(v), dtype=object)  # (and take apart again for the snapshot)
+    return pd.DataFrame({"unit_id": unit_ids, "code": text(code), "level": text(level),
+                         "text": text(texts), "numbers": many(numbers),
                          "test_id": many(test_ids)})
 
 

@@ -86,6 +86,20 @@ _SNAPSHOT_COLUMNS = ("unit_id", "week_start", "as_of", "level", "main_code", "ma
                      "limits_version")
 
 
+def _json_encoders() -> tuple[Callable[[str], str], Callable[[Any], str]]:
+    """JSON text of a string and of any value, as ``json.dumps(..., ensure_ascii=False)``
+    writes them: json's own C encoders called directly where this Python has them, without
+    the per-call set-up that is most of the time for 100,000 small objects."""
+    plain = json.JSONEncoder(ensure_ascii=False)
+    try:
+        encoder = json.encoder.c_make_encoder(
+            None, plain.default, json.encoder.encode_basestring, None, ": ", ", ", False,
+            False, True)
+    except (TypeError, AttributeError):  # no C encoder, or another signature
+        return plain.encode, plain.encode
+    return json.encoder.encode_basestring, lambda value: "".join(encoder(value, 0))
+
+
 def _reasons_json(rr: pd.DataFrame) -> dict[int, str]:
     """Each unit's reasons as the JSON array stored in its snapshot row.
 
@@ -94,12 +108,12 @@ def _reasons_json(rr: pd.DataFrame) -> dict[int, str]:
     """
     if rr.empty:
         return {}
-    encode = json.JSONEncoder(ensure_ascii=False).encode
+    text, numbers = _json_encoders()
     test_ids = ["null" if v is pd.NA else str(int(v))
                 for v in pd.array(rr["test_id"].to_numpy(dtype=object), dtype="Int64").tolist()]
     # Codes and levels are plain identifiers (checks.CODES, LEVELS): no escaping to do.
-    items = [f'{{"code": "{c}", "level": "{lv}", "text": {encode(t)}, '
-             f'"numbers": {encode(n)}, "test_id": {i}}}'
+    items = [f'{{"code": "{c}", "level": "{lv}", "text": {text(t)}, '
+             f'"numbers": {numbers(n)}, "test_id": {i}}}'
              for c, lv, t, n, i in zip(rr["code"].tolist(), rr["level"].tolist(),
                                        rr["text"].tolist(), rr["numbers"].tolist(), test_ids,
                                        strict=True)]
@@ -121,8 +135,10 @@ def _snapshot_rows(units: pd.DataFrame, rr: pd.DataFrame, week: dt.date, day: dt
     def floats(col: str) -> list[float | None]:
         return [None if v != v else v for v in units[col].to_numpy(dtype=float).tolist()]
 
-    def dates(col: str) -> list[dt.date | None]:
-        return [None if pd.isna(v) else v.date() for v in pd.to_datetime(units[col])]
+    def moments(col: str, unit: str) -> list[Any]:
+        # numpy makes the datetime.date (unit "D") or datetime.datetime ("us") objects
+        # itself, None for NaT: no Timestamp a value.
+        return pd.to_datetime(units[col]).to_numpy(f"datetime64[{unit}]").astype(object).tolist()
 
     def texts(col: str, width: int | None = None) -> list[str | None]:
         return [(v[:width] if width else v) if isinstance(v, str) else None
@@ -131,16 +147,16 @@ def _snapshot_rows(units: pd.DataFrame, rr: pd.DataFrame, week: dt.date, day: dt
     unit_ids = [int(u) for u in units.index]
     last_ids = [None if v != v else int(v)
                 for v in units["last_test_id"].to_numpy(dtype=float).tolist()]
-    last_at = [None if pd.isna(v) else v.to_pydatetime()
-               for v in pd.to_datetime(units["last_tested_at"])]
     versions = ([_int(v) for v in units["limits_version"]] if "limits_version" in units
                 else [None] * len(units))
     n = len(units)
     return list(zip(
         unit_ids, [week] * n, [day] * n, units["level"].tolist(), texts("main_code"),
-        texts("main_text", 500), [reasons.get(u, "[]") for u in unit_ids], last_ids, last_at,
+        texts("main_text", 500), [reasons.get(u, "[]") for u in unit_ids], last_ids,
+        moments("last_tested_at", "us"),
         floats("last_hours"), floats("projected_hours"), floats("projected_hours_early"),
-        dates("projected_date"), dates("projected_date_early"), floats("wear_kpa_per_1000h"),
+        moments("projected_date", "D"), moments("projected_date_early", "D"),
+        floats("wear_kpa_per_1000h"),
         [at] * n, versions, strict=True))
 
 

@@ -4,6 +4,7 @@ that keep levels honest (one-unit refresh = full refresh, voided tests stay out 
 from __future__ import annotations
 
 import datetime as dt
+import json
 from pathlib import Path
 
 import pandas as pd
@@ -273,3 +274,27 @@ def test_a_failed_part_fails_the_refresh_writes_nothing_and_leaves_no_worker(
         health.refresh_fleet(engine, AS_OF + dt.timedelta(days=7), workers=3)
     assert multiprocessing.active_children() == []
     assert _stored(engine) == before
+
+
+def test_reasons_json_is_what_json_dumps_writes() -> None:
+    # Reference: the standard library's json.dumps(..., ensure_ascii=False), byte for byte,
+    # on text that needs escaping, non-ASCII text, nested numbers and a missing test.
+    rr = pd.DataFrame({
+        "unit_id": [7, 3, 7],
+        "code": ["below_minimum", "test_overdue", "wear_faster_than_family"],
+        "level": ["act", "retest", "watch"],
+        "text": ['Cylinder 2 reads "low": 455 kPa — \\ retest', "No test yet.\nRetest.",
+                 "Ölwanne ≤ 5 %"],
+        "numbers": [{"cylinder": 2, "value_kpa": 455.3238, "limit_kpa": None},
+                    {}, {"cylinders": [1, 4], "slope_kpa_per_h": -0.0123, "ok": True}],
+        "test_id": pd.array([11, None, 12], dtype="Int64")})
+    stored = health._reasons_json(rr)
+    for unit in (3, 7):
+        rows = rr[rr["unit_id"] == unit]
+        expected = json.dumps([{"code": c, "level": lv, "text": t, "numbers": n,
+                                "test_id": None if pd.isna(i) else int(i)}
+                               for c, lv, t, n, i in zip(rows["code"], rows["level"],
+                                                         rows["text"], rows["numbers"],
+                                                         rows["test_id"], strict=True)],
+                              ensure_ascii=False)
+        assert stored[unit] == expected
