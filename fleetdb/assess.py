@@ -527,13 +527,15 @@ def _reasons(fr: Frames, res: checks.CheckResult, pts: pd.DataFrame, fits: pd.Da
         first = (cur[cur["cross_planning"].notna()].sort_values(["cross_planning", "raw"],
                                                                  kind="stable")
                  .groupby("unit_id").head(1).set_index("unit_id").reindex(soon.index))
-        first_cyl = first["cylinder"].to_numpy(dtype=float)
-        first_slope = first["slope"].to_numpy(dtype=float)
-        first_source = first["slope_source"].to_numpy(dtype=object)
-        early_h = soon["projected_hours_early"].to_numpy(dtype=float)
-        point_h = soon["projected_hours"].to_numpy(dtype=float)
-        last_h = soon["last_hours"].to_numpy(dtype=float)
-        per_week = soon["hours_per_week"].to_numpy(dtype=float)
+        # Python floats (tolist), not numpy scalars: the reasons' numbers are made plain
+        # JSON values one by one afterwards, and plain floats take the quick way there.
+        first_cyl = first["cylinder"].to_numpy(dtype=float).tolist()
+        first_slope = first["slope"].to_numpy(dtype=float).tolist()
+        first_source = first["slope_source"].to_numpy(dtype=object).tolist()
+        early_h = soon["projected_hours_early"].to_numpy(dtype=float).tolist()
+        point_h = soon["projected_hours"].to_numpy(dtype=float).tolist()
+        last_h = soon["last_hours"].to_numpy(dtype=float).tolist()
+        per_week = soon["hours_per_week"].to_numpy(dtype=float).tolist()
         early_d = _fmt_dates(soon["projected_date_early"])
         point_d = _fmt_dates(soon["projected_date"])
         texts, numbers = [], []
@@ -588,7 +590,8 @@ def _reasons(fr: Frames, res: checks.CheckResult, pts: pd.DataFrame, fits: pd.Da
             judged_id.index.to_numpy()[near], "near_minimum", "watch",
             [f"The lowest cylinder reads {_psi(v)} (sea-level equivalent), within 10 % of the "
              f"minimum {_psi(m)}." for v, m in zip(jmin[near], fmin[near], strict=True)],
-            [{"lowest_kpa": v, "minimum_kpa": m} for v, m in zip(jmin[near], fmin[near],
+            [{"lowest_kpa": v, "minimum_kpa": m} for v, m in zip(jmin[near].tolist(),
+                                                                 fmin[near].tolist(),
                                                                  strict=True)],
             judged_id.to_numpy()[near]))
 
