@@ -14,6 +14,7 @@ import json
 import multiprocessing as mp
 import multiprocessing.connection as mp_connection
 import os
+import queue
 import sys
 import threading
 import traceback
@@ -266,32 +267,51 @@ class _Part:
 
 
 def _assess_part(raw: list[frames.RawFleet], families: list[int] | None,
-                 moment: pd.Timestamp, stamps: tuple) -> _Part:
+                 moment: pd.Timestamp, stamps: tuple, *, last: bool = True) -> _Part:
     """Shape the frames of some families (None: all) from the rows in ``raw`` (taken out
-    of it), assess them and build their snapshot rows (``stamps``: week, day, time).
+    of it on the ``last`` part), assess them and build their snapshot rows (``stamps``:
+    week, day, time).
 
     Only what the snapshot needs outlives the assessment: the frames, checks and wear
     points are freed before the rows are built.
     """
-    # The frames and the assessment's working arrays take about this much heap.
+    # The frames and the assessment's working arrays take about this much heap (a later
+    # part of the same worker finds most of it mapped already).
     malloc.prefault(HEAP_PER_READING * int(sum(
         w for f, w in _family_work(raw[0], per_unit=0).items()
         if families is None or f in families)))
-    result = assess_mod.assess(frames.shape(raw.pop(), families), moment)
+    result = assess_mod.assess(frames.shape(raw.pop() if last else raw[0], families), moment)
     units, reasons, params = result.units, result.reasons, result.family_params
     del result
     return _Part(rows=_snapshot_rows(units, reasons, *stamps), levels=units["level"],
                  family_params=params)
 
 
-def _worker(send: Any, holder: list[frames.RawFleet], families: list[int],
+def _worker(send: Any, holder: list[frames.RawFleet], parts: list[list[int]],
             moment: pd.Timestamp, stamps: tuple) -> None:
-    """A forked worker: assess some families of the inherited rows, send the result."""
+    """A forked worker: assess some families of the inherited rows, part by part, and
+    send each part's result as soon as it is ready.
+
+    A thread sends, in order, while the next part is assessed: a pipe holds little, so a
+    send waits until the parent reads, and the parent may be writing another part then.
+    """
+    outbox: queue.SimpleQueue = queue.SimpleQueue()
+
+    def sender() -> None:
+        while (message := outbox.get()) is not None:
+            send.send(message)
+
+    thread = threading.Thread(target=sender, daemon=True)
+    thread.start()
     try:
-        send.send(("ok", _assess_part(holder, families, moment, stamps)))
+        for i, families in enumerate(parts):
+            outbox.put(("ok", _assess_part(holder, families, moment, stamps,
+                                           last=i == len(parts) - 1)))
     except BaseException:  # the parent re-raises it with the worker's traceback
-        send.send(("error", traceback.format_exc()))
+        outbox.put(("error", traceback.format_exc()))
     finally:
+        outbox.put(None)
+        thread.join()
         send.close()
 
 
@@ -324,32 +344,37 @@ def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: t
         part.rows = []
         return part
     ctx = mp.get_context("fork")
+    weight = _family_work(holder[0])
     running: dict[Any, tuple[Any, list[int]]] = {}
+    left: dict[Any, int] = {}  # parts each worker has still to send
     parts: list[_Part] = []
     try:
         for families in bins:
             receive, send = ctx.Pipe(duplex=False)
-            proc = ctx.Process(target=_worker, args=(send, holder, families, moment, stamps),
+            pieces = _pieces(families, weight)
+            proc = ctx.Process(target=_worker, args=(send, holder, pieces, moment, stamps),
                                daemon=True)
             proc.start()
             send.close()
-            running[receive] = (proc, families)
+            running[receive], left[receive] = (proc, families), len(pieces)
         holder.clear()  # the workers have their own; the parent only writes from here
-        waiting = dict(running)
-        while waiting:
-            for receive in mp_connection.wait(list(waiting)):
-                proc, families = waiting.pop(receive)
+        while left:
+            for receive in mp_connection.wait(list(left)):
+                proc, families = running[receive]
                 try:
                     status, payload = receive.recv()
                 except EOFError:  # it died without a word (killed, out of memory)
                     proc.join()
                     status, payload = "error", f"the worker ended with exit code {proc.exitcode}"
-                proc.join()
                 if status != "ok":
                     raise RuntimeError(f"assessing engine families {families} failed:\n{payload}")
                 write(payload.rows)
                 payload.rows = []
                 parts.append(payload)
+                left[receive] -= 1
+                if not left[receive]:
+                    del left[receive]
+                    proc.join()
     finally:  # whatever failed, no worker is left behind, waiting to send
         for receive, (proc, _) in running.items():
             if proc.is_alive():
@@ -358,7 +383,17 @@ def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: t
             receive.close()
     return _Part(rows=[], levels=pd.concat([p.levels for p in parts]).sort_index(),
                  family_params=pd.concat([p.family_params for p in parts]).sort_index(),
-                 processes=len(parts))
+                 processes=len(running))
+
+
+def _pieces(families: list[int], weight: dict[int, float]) -> list[list[int]]:
+    """A worker's families in the order it assesses and sends them: all but the lightest,
+    then the lightest alone, so that the parent writes most of the rows while the
+    workers finish (one piece when there is one family)."""
+    if len(families) < 2:
+        return [families]
+    lightest = min(families, key=lambda f: (weight.get(f, 0.0), f))
+    return [[f for f in families if f != lightest], [lightest]]
 
 
 class _SnapshotWriter:
