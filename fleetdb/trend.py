@@ -139,7 +139,14 @@ def _gsum(codes: np.ndarray, values: np.ndarray | None, n_groups: int) -> np.nda
 
 def _group_max(codes: np.ndarray, values: np.ndarray, n_groups: int) -> np.ndarray:
     out = np.full(n_groups, -np.inf)
-    np.maximum.at(out, codes, values)
+    if len(codes) and (codes[1:] >= codes[:-1]).all():
+        # Rows in group order (as the fits keep them): one reduction per run, several
+        # times faster than the unbuffered ufunc.at; the same maxima.
+        starts = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]])
+        with np.errstate(invalid="ignore"):  # NaN propagates, as through ufunc.at
+            out[codes[starts]] = np.maximum.reduceat(values, starts)
+    else:
+        np.maximum.at(out, codes, values)
     return np.where(np.isfinite(out), out, np.nan)
 
 

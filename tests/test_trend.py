@@ -617,3 +617,20 @@ def test_one_series_with_stored_family_params_equals_whole_fleet(one: str) -> No
     pd.testing.assert_series_equal(alone.loc[one], full.loc[one], check_names=False,
                                    rtol=1e-12)
     pd.testing.assert_frame_equal(sub_points, points.loc[subset.index])
+
+
+@settings(max_examples=100, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 8), st.sampled_from(
+    [1.0, -2.5, 3.0, 0.0, float("nan"), float("inf"), float("-inf")])), max_size=40),
+    st.booleans())
+def test_group_max_equals_the_unbuffered_ufunc(rows: list, in_order: bool) -> None:
+    # Reference: numpy's np.maximum.at (the unbuffered ufunc), which _group_max replaces by
+    # a reduction per run when the rows come in group order.
+    rows = sorted(rows, key=lambda r: r[0]) if in_order else rows
+    codes = np.array([c for c, _ in rows], dtype=np.int64)
+    values = np.array([v for _, v in rows], dtype=float)
+    expected = np.full(9, -np.inf)
+    with np.errstate(invalid="ignore"):
+        np.maximum.at(expected, codes, values)
+        found = trend._group_max(codes, values, 9)
+    np.testing.assert_array_equal(found, np.where(np.isfinite(expected), expected, np.nan))
