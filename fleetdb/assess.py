@@ -40,6 +40,7 @@ from scipy import special
 from fleetdb import checks, fleetfit
 from fleetdb.defaults import DEFAULTS
 from fleetdb.frames import Frames, in_unit_time_order
+from fleetdb.ids import positions
 from fleetdb.units import KPA_PER_UNIT
 
 LEVELS = ("act", "plan", "retest", "watch", "sound")
@@ -187,7 +188,7 @@ def _series_points(fr: Frames, res: checks.CheckResult, as_of: pd.Timestamp) -> 
     """Dry compression readings and per-test spread, keyed into wear series."""
     tests, fams = fr.tests, fr.families
     rd = fr.readings[(fr.readings["kind"] == "compression").to_numpy()]
-    at = tests.index.get_indexer(rd["test_id"].to_numpy())
+    at = positions(tests.index, rd["test_id"].to_numpy())
     if (at < 0).any():  # readings of tests not given (frames.load never has them)
         rd, at = rd[at >= 0], at[at >= 0]
 

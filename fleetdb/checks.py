@@ -54,6 +54,7 @@ from fleetdb.defaults import (  # noqa: F401 - re-exported for callers of checks
     defaults_table,
 )
 from fleetdb.errors import InvalidValue
+from fleetdb.ids import positions
 from fleetdb.units import KPA_PER_UNIT
 
 OVERRIDE_NOTE = ("Every limit is a default; the engine family's own service data overrides it. "
@@ -371,7 +372,7 @@ def check_tests(families: pd.DataFrame, tests: pd.DataFrame,
     """
     fp = _family_params(tests, families)
     n = len(tests)
-    rows = tests.index.get_indexer(readings["test_id"].to_numpy())
+    rows = positions(tests.index, readings["test_id"].to_numpy())
     known = rows >= 0
     rd = readings[known] if not known.all() else readings
     rows = rows[known]

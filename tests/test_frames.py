@@ -2,10 +2,14 @@
 
 from __future__ import annotations
 
+import numpy as np
 import pandas as pd
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from sqlalchemy.engine import Engine
 
 from fleetdb import arrowread, frames, ingest, logbook
+from fleetdb.ids import member_mask, positions
 from tests.conftest import DATA
 
 SQL = ("SELECT r.test_id, r.kind, COALESCE(r.cylinder, 0) AS cylinder, r.value_si AS value "
@@ -56,3 +60,17 @@ def test_load_through_arrow_equals_plain(sqlite_url: str, monkeypatch) -> None: 
     pd.testing.assert_frame_equal(lean.tests, plain.tests.drop(columns=list(frames.DETAIL_COLUMNS)))
     pd.testing.assert_frame_equal(lean.readings, fast.readings)
     engine.dispose()
+
+
+@settings(max_examples=100, deadline=None)
+@given(st.lists(st.integers(-3, 60), unique=True, max_size=30),
+       st.lists(st.integers(-3, 60), max_size=50), st.booleans())
+def test_id_lookups_equal_pandas_and_numpy(keys: list, ids: list, sparse: bool) -> None:
+    # References: pandas Index.get_indexer and numpy.isin. Dense ids go through a lookup
+    # table, sparse or negative ones through the references themselves.
+    scale = 10**7 if sparse else 1
+    index = pd.Index(np.array(keys, dtype=np.int64) * scale)
+    wanted = np.array(ids, dtype=np.int64) * scale
+    np.testing.assert_array_equal(positions(index, wanted), index.get_indexer(wanted))
+    np.testing.assert_array_equal(member_mask(wanted, index.to_numpy()),
+                                  np.isin(wanted, index.to_numpy()))
