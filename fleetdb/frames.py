@@ -138,7 +138,9 @@ def _restore_nulls(tests: pd.DataFrame, voids: pd.DataFrame) -> pd.DataFrame:
     for name in _TEXTS:
         if name in tests:
             null = tests.pop(f"{name}__null").to_numpy(dtype=bool)
-            tests[name] = tests[name].where(~null)
+            tests[name] = (pd.Series([None] * len(tests), index=tests.index, dtype=object)
+                           if null.all()  # as the plain read gives a column of NULLs only
+                           else tests[name].where(~null))
     for name in ("test_id", "unit_id"):
         tests[name] = tests[name].astype(np.int64)
     at = pd.Index(tests["test_id"]).get_indexer(voids["test_id"].to_numpy())

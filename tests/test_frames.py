@@ -59,6 +59,13 @@ def test_load_through_arrow_equals_plain(sqlite_url: str, monkeypatch) -> None: 
     assert not set(frames.DETAIL_COLUMNS) & set(lean.tests.columns)
     pd.testing.assert_frame_equal(lean.tests, plain.tests.drop(columns=list(frames.DETAIL_COLUMNS)))
     pd.testing.assert_frame_equal(lean.readings, fast.readings)
+    # A detail no test has: a column of NULLs either way.
+    with engine.begin() as conn:
+        conn.exec_driver_sql("UPDATE test SET note = NULL, technician = NULL")
+    monkeypatch.setattr(frames, "ARROW_READ_MIN_ROWS", 10**9)
+    plain = frames.load(engine)
+    monkeypatch.setattr(frames, "ARROW_READ_MIN_ROWS", 1)
+    pd.testing.assert_frame_equal(frames.load(engine).tests, plain.tests)
     engine.dispose()
 
 
