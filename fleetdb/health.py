@@ -239,13 +239,14 @@ def _family_work(raw: frames.RawFleet, per_unit: float = UNIT_WORK) -> dict[int,
             for f, n in units.items()}
 
 
-def _family_bins(raw: frames.RawFleet, n: int) -> list[list[int]]:
+def _family_bins(raw: frames.RawFleet, n: int,
+                 weight: dict[int, float] | None = None) -> list[list[int]]:
     """The fleet's families in at most ``n`` bins of about equal work, heaviest first.
 
-    A family's work is counted by :func:`_family_work`; families are placed greedily,
-    largest first, into the lightest bin.
+    A family's work is counted by :func:`_family_work` (or given as ``weight``); families
+    are placed greedily, largest first, into the lightest bin.
     """
-    weight = _family_work(raw)
+    weight = _family_work(raw) if weight is None else weight
     bins: list[list[int]] = [[] for _ in range(max(1, n))]
     load = [0.0] * len(bins)
     for fam in sorted(weight, key=lambda f: (-weight[f], f)):
@@ -267,19 +268,22 @@ class _Part:
 
 
 def _assess_part(raw: list[frames.RawFleet], families: list[int] | None,
-                 moment: pd.Timestamp, stamps: tuple, *, last: bool = True) -> _Part:
+                 moment: pd.Timestamp, stamps: tuple, *, last: bool = True,
+                 readings: float | None = None) -> _Part:
     """Shape the frames of some families (None: all) from the rows in ``raw`` (taken out
     of it on the ``last`` part), assess them and build their snapshot rows (``stamps``:
-    week, day, time).
+    week, day, time). ``readings``: about how many readings those families have (None:
+    counted here).
 
     Only what the snapshot needs outlives the assessment: the frames, checks and wear
     points are freed before the rows are built.
     """
+    if readings is None:
+        readings = sum(w for f, w in _family_work(raw[0], per_unit=0).items()
+                       if families is None or f in families)
     # The frames and the assessment's working arrays take about this much heap (a later
     # part of the same worker finds most of it mapped already).
-    malloc.prefault(HEAP_PER_READING * int(sum(
-        w for f, w in _family_work(raw[0], per_unit=0).items()
-        if families is None or f in families)))
+    malloc.prefault(int(HEAP_PER_READING * readings))
     result = assess_mod.assess(frames.shape(raw.pop() if last else raw[0], families), moment)
     units, reasons, params = result.units, result.reasons, result.family_params
     del result
@@ -288,7 +292,7 @@ def _assess_part(raw: list[frames.RawFleet], families: list[int] | None,
 
 
 def _worker(send: Any, holder: list[frames.RawFleet], parts: list[list[int]],
-            moment: pd.Timestamp, stamps: tuple) -> None:
+            readings: list[float], moment: pd.Timestamp, stamps: tuple) -> None:
     """A forked worker: assess some families of the inherited rows, part by part, and
     send each part's result as soon as it is ready.
 
@@ -306,7 +310,7 @@ def _worker(send: Any, holder: list[frames.RawFleet], parts: list[list[int]],
     try:
         for i, families in enumerate(parts):
             outbox.put(("ok", _assess_part(holder, families, moment, stamps,
-                                           last=i == len(parts) - 1)))
+                                           last=i == len(parts) - 1, readings=readings[i])))
     except BaseException:  # the parent re-raises it with the worker's traceback
         outbox.put(("error", traceback.format_exc()))
     finally:
@@ -337,14 +341,15 @@ def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: t
     # Linux only (numpy's and Arrow's thread pools are made anew in a forked child there;
     # on macOS a fork after the system's frameworks are loaded is not safe).
     can_fork = sys.platform == "linux" and threading.active_count() == 1
-    bins = _family_bins(holder[0], workers) if workers > 1 and can_fork else []
+    weight = _family_work(holder[0])
+    bins = _family_bins(holder[0], workers, weight) if workers > 1 and can_fork else []
     if len(bins) < 2:
         part = _assess_part(holder, None, moment, stamps)
         write(part.rows)
         part.rows = []
         return part
     ctx = mp.get_context("fork")
-    weight = _family_work(holder[0])
+    readings = _family_work(holder[0], per_unit=0)
     running: dict[Any, tuple[Any, list[int]]] = {}
     left: dict[Any, int] = {}  # parts each worker has still to send
     parts: list[_Part] = []
@@ -352,8 +357,9 @@ def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: t
         for families in bins:
             receive, send = ctx.Pipe(duplex=False)
             pieces = _pieces(families, weight)
-            proc = ctx.Process(target=_worker, args=(send, holder, pieces, moment, stamps),
-                               daemon=True)
+            sizes = [sum(readings[f] for f in piece) for piece in pieces]
+            proc = ctx.Process(target=_worker,
+                               args=(send, holder, pieces, sizes, moment, stamps), daemon=True)
             proc.start()
             send.close()
             running[receive], left[receive] = (proc, families), len(pieces)
