@@ -23,6 +23,7 @@ from fleetdb.trend import (
     detect_steps,
     detect_steps_again,
     fit_theil_sen,
+    in_series_order,
     pool_slopes,
     pooled_residual_sd,
     shrink,
@@ -121,7 +122,13 @@ def fit_fleet(
     codes, keys = _factorize(data[series])
     # Work in (series, hours) order, ties in input order: the order step detection judges
     # in, so that its two passes and Theil-Sen find the rows already sorted.
-    order = np.lexsort((data[x].to_numpy(float), codes))
+    # Rows usually come in test order, where each series' hours already rise: a stable
+    # sort by series alone is then the same order, several times faster than lexsort.
+    hours = data[x].to_numpy(float)
+    order = np.argsort(codes, kind="stable")
+    if not in_series_order(codes[order], hours[order]):
+        order = np.lexsort((hours, codes))
+    del hours
     if not (order[1:] > order[:-1]).all():
         data, codes, position = data.iloc[order], codes[order], position[order]
     del order
