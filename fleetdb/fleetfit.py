@@ -52,19 +52,45 @@ def _stray_reading(
 
 
 
-def _family_noise(
-    codes: np.ndarray, segment: np.ndarray, x: np.ndarray, y: np.ndarray,
-    family_of_series: np.ndarray, external: pd.DataFrame | None = None,
-) -> tuple[np.ndarray, np.ndarray]:
-    """Per series: its family's residual SD and df pooled over all segments with n >= 3.
-
-    ``external`` (index: family code) replaces the pooled values where it has them.
-    """
+def _segment_noise(codes: np.ndarray, segment: np.ndarray, x: np.ndarray,
+                   y: np.ndarray) -> tuple[np.ndarray, ...]:
+    """Per segment of a series, in (series, segment) order: the series code, the segment,
+    and the residual SD and df of its own OLS fit."""
     width = int(segment.max()) + 1
     seg_codes, seg_keys = _factorize(codes * width + segment)
     fits = _ols(seg_codes, x, y, len(seg_keys))
-    owner = seg_keys.to_numpy() // width
-    pooled = pooled_residual_sd(family_of_series[owner], fits["resid_sd"], fits["resid_df"])
+    keys = seg_keys.to_numpy()
+    return keys // width, keys % width, fits["resid_sd"], fits["resid_df"]
+
+
+def _segment_noise_again(before: tuple[np.ndarray, ...], codes: np.ndarray,
+                         segment_before: np.ndarray, segment: np.ndarray, x: np.ndarray,
+                         y: np.ndarray) -> tuple[np.ndarray, ...]:
+    """:func:`_segment_noise` after some series' segments changed: only those series are
+    fitted again (a segment's fit depends on its own rows alone); the same arrays, in the
+    same order, as fitting every segment again."""
+    changed = np.unique(codes[segment != segment_before])
+    if changed.size == 0:
+        return before
+    rows = np.isin(codes, changed)
+    new = _segment_noise(codes[rows], segment[rows], x[rows], y[rows])
+    kept = ~np.isin(before[0], changed)
+    merged = [np.concatenate([old[kept], fresh]) for old, fresh in zip(before, new, strict=True)]
+    order = np.lexsort((merged[1], merged[0]))
+    return tuple(column[order] for column in merged)
+
+
+def _family_noise(
+    per_segment: tuple[np.ndarray, ...], family_of_series: np.ndarray,
+    external: pd.DataFrame | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Per series: its family's residual SD and df pooled over all segments with n >= 3
+    (``per_segment``: :func:`_segment_noise`).
+
+    ``external`` (index: family code) replaces the pooled values where it has them.
+    """
+    owner, _, resid_sd, resid_df = per_segment
+    pooled = pooled_residual_sd(family_of_series[owner], resid_sd, resid_df)
     pooled = pooled.reindex(np.arange(family_of_series.max() + 1))
     if external is not None:
         has = external["family_noise_sd"].notna().to_numpy()
@@ -154,15 +180,17 @@ def fit_fleet(
 
     # Pass 1 judges with own noise only; its segments give the family noise for pass 2.
     first_pass = detect_steps(codes, xa, ya, confidence=step_level, min_drop=step_drop)
-    noise_sd, noise_df = _family_noise(codes, first_pass["segment"].to_numpy(), xa, ya, family,
-                                       external)
+    first_segment = first_pass["segment"].to_numpy()
+    per_segment = _segment_noise(codes, first_segment, xa, ya)
+    noise_sd, noise_df = _family_noise(per_segment, family, external)
     steps = detect_steps_again(first_pass, codes, xa, ya, noise_sd=noise_sd[codes],
                                noise_df=noise_df[codes], confidence=step_level,
                                min_drop=step_drop)
     segment = steps["segment"].to_numpy()
-    if not np.array_equal(segment, first_pass["segment"].to_numpy()):
-        noise_sd, noise_df = _family_noise(codes, segment, xa, ya, family, external)
-    del first_pass
+    if not np.array_equal(segment, first_segment):
+        per_segment = _segment_noise_again(per_segment, codes, first_segment, segment, xa, ya)
+        noise_sd, noise_df = _family_noise(per_segment, family, external)
+    del first_pass, first_segment, per_segment
 
     current = segment == _group_max(codes, segment, g)[codes]
     fit = _ols(codes[current], xa[current], ya[current], g)

@@ -634,3 +634,24 @@ def test_group_max_equals_the_unbuffered_ufunc(rows: list, in_order: bool) -> No
         np.maximum.at(expected, codes, values)
         found = trend._group_max(codes, values, 9)
     np.testing.assert_array_equal(found, np.where(np.isfinite(expected), expected, np.nan))
+
+
+def test_segment_fits_again_equal_fitting_every_segment_again() -> None:
+    # Reference: fleetfit._segment_noise over every segment of the new segmentation, bit
+    # for bit (each segment's fit depends on its own rows only).
+    fleet = random_fleet(5, 400, 12).sort_values(["series", "x"], kind="stable")
+    codes, _ = trend._factorize(fleet["series"])
+    x, y = fleet["x"].to_numpy(), fleet["y"].to_numpy()
+    rng = np.random.default_rng(8)
+    position = np.arange(len(x)) - np.r_[0, np.flatnonzero(np.diff(codes)) + 1].repeat(
+        np.diff(np.r_[0, np.flatnonzero(np.diff(codes)) + 1, len(x)]))
+    before = (position >= rng.integers(3, 8, codes.max() + 1)[codes]).astype(np.int64)
+    after = before.copy()
+    moved = np.isin(codes, rng.choice(codes.max() + 1, 40, replace=False))
+    after[moved] = (position[moved] >= 2).astype(np.int64) * 2  # other steps, more segments
+    again = fleetfit._segment_noise_again(fleetfit._segment_noise(codes, before, x, y), codes,
+                                          before, after, x, y)
+    fresh = fleetfit._segment_noise(codes, after, x, y)
+    for found, expected in zip(again, fresh, strict=True):
+        np.testing.assert_array_equal(found, expected)
+    assert np.isin(fresh[0], np.unique(codes[moved])).sum() > 40  # the changed ones refitted
