@@ -654,7 +654,7 @@ def detect_steps_again(
         the same rows (index as given there).
     :param noise_sd, noise_df, confidence, min_drop: as for :func:`detect_steps`.
     """
-    out = without_noise.copy()
+    out = without_noise.copy(deep=False)  # columns are replaced, never written into
     n_rows = len(out)
     codes, _, xa, ya, rows = _prepare(series, x, y)
     if in_series_order(codes, xa):
@@ -666,8 +666,11 @@ def detect_steps_again(
     if third.size == 0:
         return out
 
-    def per_row(values: ArrayLike) -> np.ndarray:
-        return np.broadcast_to(np.asarray(values, dtype=float), (n_rows,))[src]
+    in_place = src.size == n_rows and bool((src == np.arange(n_rows)).all())
+
+    def per_row(values: ArrayLike) -> np.ndarray:  # in sorted order (a view when it is)
+        row_values = np.broadcast_to(np.asarray(values, dtype=float), (n_rows,))
+        return row_values if in_place else row_values[src]
 
     # Each third reading with its segment's two earlier ones (never shared: a segment
     # starts at a step, which the first pass finds only at a reading judged on three).
