@@ -40,7 +40,7 @@ from scipy import special
 from fleetdb import checks, fleetfit
 from fleetdb.defaults import DEFAULTS
 from fleetdb.frames import Frames, in_unit_time_order
-from fleetdb.ids import positions
+from fleetdb.ids import member_mask, positions
 from fleetdb.units import KPA_PER_UNIT
 
 LEVELS = ("act", "plan", "retest", "watch", "sound")
@@ -441,8 +441,8 @@ def _check(fr: Frames, all_findings: bool) -> checks.CheckResult:
                                findings_for=np.zeros(len(fr.tests), dtype=bool))
     wanted = np.union1d(_judged_tests(fr, quiet.tests).to_numpy(),
                         _latest(fr.tests, ~fr.tests["voided"].to_numpy(bool)).index.to_numpy())
-    some = checks.check_tests(fr.families, fr.tests.loc[wanted],
-                              fr.readings[fr.readings["test_id"].isin(wanted)])
+    some = checks.check_tests(fr.families, fr.tests.iloc[positions(fr.tests.index, wanted)],
+                              fr.readings[member_mask(fr.readings["test_id"], wanted)])
     return checks.CheckResult(tests=quiet.tests, findings=some.findings)
 
 
