@@ -37,28 +37,12 @@ def read_sqlite(path: str, sql: str) -> pd.DataFrame:
     :param sql: a SELECT statement.
     :raises RuntimeError: when the child fails (its message included).
     """
-    return read_sqlite_many(path, [[sql]])[0]
+    return to_pandas(read_sqlite_tables(path, [[sql]])[0])
 
 
-def read_sqlite_many(path: str, frames: list[list[str]], *,
-                     categorical: tuple[str, ...] = ()) -> list[pd.DataFrame]:
-    """:func:`read_sqlite_tables`, each table as a DataFrame (:func:`to_pandas`)."""
-    return [to_pandas(table, categorical) for table in read_sqlite_tables(path, frames)]
-
-
-def to_pandas(table: Any, categorical: tuple[str, ...] = (), *, pool: Any = None) -> pd.DataFrame:
-    """An Arrow table as a DataFrame.
-
-    :param categorical: text columns to return as pandas categoricals (dictionary-encoded
-        while still in Arrow, so no Python string is made per row).
-    :param pool: the Arrow memory pool to convert in (None: Arrow's default).
-    """
-    import pyarrow.compute as pc
-
-    for name in categorical:
-        if name in table.column_names:
-            table = table.set_column(table.column_names.index(name), name,
-                                     pc.dictionary_encode(table[name], memory_pool=pool))
+def to_pandas(table: Any, *, pool: Any = None) -> pd.DataFrame:
+    """An Arrow table as a DataFrame, converted in the Arrow memory pool ``pool`` (None:
+    Arrow's default)."""
     return table.to_pandas(memory_pool=pool)
 
 
