@@ -341,8 +341,9 @@ def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: t
     # Linux only (numpy's and Arrow's thread pools are made anew in a forked child there;
     # on macOS a fork after the system's frameworks are loaded is not safe).
     can_fork = sys.platform == "linux" and threading.active_count() == 1
-    weight = _family_work(holder[0])
-    bins = _family_bins(holder[0], workers, weight) if workers > 1 and can_fork else []
+    split = workers > 1 and can_fork
+    weight = _family_work(holder[0]) if split else {}
+    bins = _family_bins(holder[0], workers, weight) if split else []
     if len(bins) < 2:
         part = _assess_part(holder, None, moment, stamps)
         write(part.rows)
