@@ -10,6 +10,7 @@ statistics instead of re-reading the whole family).
 from __future__ import annotations
 
 import datetime as dt
+import gc
 import json
 import multiprocessing as mp
 import multiprocessing.connection as mp_connection
@@ -351,6 +352,7 @@ def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: t
         return part
     ctx = mp.get_context("fork")
     readings = _family_work(holder[0], per_unit=0)
+    gc.freeze()  # the workers' collections then never write into the pages they share
     running: dict[Any, tuple[Any, list[int]]] = {}
     left: dict[Any, int] = {}  # parts each worker has still to send
     parts: list[_Part] = []
@@ -383,6 +385,7 @@ def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: t
                     del left[receive]
                     proc.join()
     finally:  # whatever failed, no worker is left behind, waiting to send
+        gc.unfreeze()
         for receive, (proc, _) in running.items():
             if proc.is_alive():
                 proc.terminate()
@@ -394,13 +397,10 @@ def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: t
 
 
 def _pieces(families: list[int], weight: dict[int, float]) -> list[list[int]]:
-    """A worker's families in the order it assesses and sends them: all but the lightest,
-    then the lightest alone, so that the parent writes most of the rows while the
-    workers finish (one piece when there is one family)."""
-    if len(families) < 2:
-        return [families]
-    lightest = min(families, key=lambda f: (weight.get(f, 0.0), f))
-    return [[f for f in families if f != lightest], [lightest]]
+    """A worker's families in the order it assesses and sends them: one at a time,
+    heaviest first (lightest last, so that the parent writes most of the rows while the
+    workers finish; a smaller part needs a smaller heap)."""
+    return [[f] for f in sorted(families, key=lambda f: (-weight.get(f, 0.0), f))]
 
 
 class _SnapshotWriter:
