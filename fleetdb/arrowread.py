@@ -13,9 +13,11 @@ import os
 import subprocess
 import sys
 import tempfile
-from typing import Any
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any
 
-import pandas as pd
+if TYPE_CHECKING:  # pandas and pyarrow are imported when used: starting a read needs neither
+    import pandas as pd
 
 
 def available() -> bool:
@@ -70,8 +72,62 @@ def read_sqlite_tables(path: str, frames: list[list[str]], *, narrow: bool = Fal
         (left as text where a value does not parse).
     :raises RuntimeError: when a child fails (its message included).
     """
-    import pyarrow as pa
+    return start_sqlite_tables(path, frames, narrow=narrow, timestamps=timestamps).collect()
 
+
+@dataclass
+class PendingTables:
+    """:func:`read_sqlite_tables` started: its children run until :meth:`collect`."""
+
+    path: str
+    frames: list[list[str]]
+    runs: list[subprocess.Popen]
+    outs: list[str]
+    base: str
+
+    def collect(self) -> list[Any]:
+        """Wait for the children and return the tables (see :func:`read_sqlite_tables`).
+
+        :raises RuntimeError: when a child fails (its message included).
+        """
+        import pyarrow as pa
+
+        try:
+            errors = [err for err, code in ((run.communicate()[1], run.returncode)
+                                            for run in self.runs) if code != 0]
+            if errors:
+                raise RuntimeError(f"Arrow read of {self.path} failed: "
+                                   f"{errors[0].strip()[-500:]}")
+            result, at = [], 0
+            for group in self.frames:
+                tables = [pa.ipc.open_file(pa.memory_map(out, "r")).read_all()
+                          for out in self.outs[at:at + len(group)]]
+                at += len(group)
+                result.append(pa.concat_tables(tables, promote_options="permissive")
+                              if len(tables) > 1 else tables[0])
+            return result
+        finally:
+            self._remove_files()
+
+    def cancel(self) -> None:
+        """Stop the children and remove their files (a read no one will collect)."""
+        for run in self.runs:
+            if run.poll() is None:
+                run.kill()
+            run.communicate()
+        self._remove_files()
+
+    def _remove_files(self) -> None:
+        for leftover in (self.base, *self.outs):
+            if os.path.exists(leftover):
+                os.unlink(leftover)
+
+
+def start_sqlite_tables(path: str, frames: list[list[str]], *, narrow: bool = False,
+                        timestamps: tuple[str, ...] = ()) -> PendingTables:
+    """Start :func:`read_sqlite_tables` (same parameters) and return at once; the tables
+    come from the result's :meth:`~PendingTables.collect`. Imports neither pandas nor
+    pyarrow, so a command can start a read before its own heavy imports."""
     fd, base = tempfile.mkstemp(prefix="fleetdb-read-", suffix=".arrow")
     os.close(fd)
     queries = [sql for group in frames for sql in group]
@@ -79,23 +135,13 @@ def read_sqlite_tables(path: str, frames: list[list[str]], *, narrow: bool = Fal
     child = [sys.executable, "-m", "fleetdb._arrow_child", path]
     options = (["--narrow"] if narrow else []) + [
         arg for name in timestamps for arg in ("--timestamp", name)]
+    pending = PendingTables(path, frames, [], outs, base)
     try:
-        runs = [subprocess.Popen([*child, out, sql, *options], stdout=subprocess.DEVNULL,
-                                 stderr=subprocess.PIPE, text=True)
-                for sql, out in zip(queries, outs, strict=True)]
-        errors = [err for err, code in ((run.communicate()[1], run.returncode) for run in runs)
-                  if code != 0]
-        if errors:
-            raise RuntimeError(f"Arrow read of {path} failed: {errors[0].strip()[-500:]}")
-        result, at = [], 0
-        for group in frames:
-            tables = [pa.ipc.open_file(pa.memory_map(out, "r")).read_all()
-                      for out in outs[at:at + len(group)]]
-            at += len(group)
-            result.append(pa.concat_tables(tables, promote_options="permissive")
-                          if len(tables) > 1 else tables[0])
-        return result
-    finally:
-        for leftover in (base, *outs):
-            if os.path.exists(leftover):
-                os.unlink(leftover)
+        for sql, out in zip(queries, outs, strict=True):
+            pending.runs.append(subprocess.Popen(
+                [*child, out, sql, *options], stdout=subprocess.DEVNULL,
+                stderr=subprocess.PIPE, text=True))
+    except BaseException:
+        pending.cancel()
+        raise
+    return pending

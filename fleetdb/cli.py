@@ -11,7 +11,6 @@ from pathlib import Path
 from typing import Any
 
 import click
-import pandas as pd
 
 from fleetdb import __version__, config
 from fleetdb.errors import FleetDBError
@@ -60,7 +59,10 @@ def _engine(db: str | None, *, check: bool = True):  # noqa: ANN202 - sqlalchemy
     return engine
 
 
-def _end_of(day: Any) -> pd.Timestamp | None:
+def _end_of(day: Any) -> Any:
+    """The last minute of a day, as a pandas Timestamp (None stays None)."""
+    import pandas as pd
+
     return None if day is None else pd.Timestamp(day).normalize() + pd.Timedelta(hours=23,
                                                                                    minutes=59)
 
@@ -494,6 +496,9 @@ def refresh(as_of: Any, workers: int | None, db: str | None) -> None:
     Example:
         fleetdb refresh --as-of 2026-06-30
     """
+    from fleetdb import bulkread
+
+    bulkread.begin(config.database_url(db))  # the read runs while the analysis is imported
     from fleetdb import health
 
     result = health.refresh_fleet(_engine(db), None if as_of is None else as_of.date(),
@@ -507,9 +512,7 @@ def refresh(as_of: Any, workers: int | None, db: str | None) -> None:
 
 def serve_options(func: Callable) -> Callable:
     """``--host``, ``--port`` and the session limits for the dashboard."""
-    from fleetdb.users import SESSION_SETTINGS
-
-    for name, default, text_ in reversed(SESSION_SETTINGS):
+    for name, default, text_ in reversed(config.SESSION_SETTINGS):
         func = click.option(f"--{name.replace('_', '-')}", name, default=default, type=int,
                             show_default=True, envvar=f"FLEETDB_{name.upper()}",
                             show_envvar=True, help=text_[0].upper() + text_[1:] + ".")(func)

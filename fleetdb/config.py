@@ -13,6 +13,13 @@ from platformdirs import user_data_dir
 
 ENV_VAR = "FLEETDB_DATABASE_URL"
 
+#: Session limits (settings of ``fleetdb serve``): minutes without a request, and hours
+#: since the login. Here, not in fleetdb.users, so the command's options need no models.
+SESSION_SETTINGS: tuple[tuple[str, int, str], ...] = (
+    ("session_idle_minutes", 30, "a session ends after this many minutes without a request"),
+    ("session_max_hours", 12, "a session ends this many hours after the login, used or not"),
+)
+
 
 def default_sqlite_path() -> Path:
     """The SQLite file used when nothing else is configured."""

@@ -15,7 +15,7 @@ import pandas as pd
 from sqlalchemy import text
 from sqlalchemy.engine import Engine
 
-from fleetdb import arrowread, atmosphere, trend
+from fleetdb import arrowread, atmosphere, bulkread, trend
 from fleetdb.ids import member_mask
 
 
@@ -51,47 +51,35 @@ def _sqlite_file(engine: Engine) -> str | None:
     return None
 
 
-#: Above this many readings a SQLite file is read through Arrow in a child process.
-ARROW_READ_MIN_ROWS = 200_000
+#: Above this many readings a SQLite file is read through Arrow in child processes.
+ARROW_READ_MIN_ROWS = bulkread.ARROW_READ_MIN_ROWS
+KINDS, DETAIL_COLUMNS = bulkread.KINDS, bulkread.DETAIL_COLUMNS
+NULL_MEASUREMENT = bulkread.NULL_MEASUREMENT
+_MEASURED, _TEXTS = bulkread.MEASURED, bulkread.TEXTS
 
 
-@dataclass
-class _ArrowRead:
-    path: str
-    last_test: int  # the highest test id when the read began
-    last_reading: int  # the highest reading id then
-
-
-def _arrow_source(engine: Engine, whole_fleet: bool) -> _ArrowRead | None:
-    """What to read through Arrow (see :mod:`fleetdb.arrowread`), or None.
-
-    Only whole-fleet reads of a large SQLite file go that way. The tests and the readings
-    are read at once by several processes, each in its own transaction: all stop at the
-    highest test id of this moment, so a test logged meanwhile is left out whole (tests
-    and their readings are written in one transaction).
+def _arrow_source(engine: Engine, whole_fleet: bool,
+                  details: bool) -> bulkread.FleetRead | None:
+    """The Arrow read of the whole fleet (:class:`fleetdb.bulkread.FleetRead`): the one
+    begun for this store before the analysis was imported (:func:`fleetdb.bulkread.begin`),
+    or one started now; None where the plain read serves (not a SQLite file, some units
+    only, a small store, no Arrow driver).
     """
     path = _sqlite_file(engine)
-    if path is not None and whole_fleet and arrowread.available():
+    if path is None or not whole_fleet:
+        return None
+    begun = bulkread.take(path, details)
+    if begun is not None:
+        return begun
+    if arrowread.available():
         with engine.connect() as conn:
-            last_reading, last_test = conn.execute(text(
-                "SELECT (SELECT COALESCE(MAX(id), 0) FROM reading), "
-                "(SELECT COALESCE(MAX(id), 0) FROM test)")).one()
+            last_reading, last_test = conn.execute(text(bulkread.BOUNDS_SQL)).one()
         if last_reading >= ARROW_READ_MIN_ROWS:
-            return _ArrowRead(path, int(last_test), int(last_reading))
+            return bulkread.start(path, int(last_test), int(last_reading), details=details)
     return None
 
 
 _TESTS_FROM = " FROM test t LEFT JOIN test_void v ON v.test_id = t.id"
-
-
-#: The kinds of reading (models.READING_KINDS, sorted; the analysis need not import the
-#: models): the categories of the readings' ``kind``.
-KINDS = ("compression", "leakdown", "relative", "vacuum_cranking", "vacuum_idle", "wet")
-
-#: Columns of the tests frame that only the unit pages show (the analysis never reads them).
-DETAIL_COLUMNS = ("technician", "note", "source")
-_MEASURED = ("battery_v", "crank_rpm", "engine_temp_c", "baro_kpa")  # nullable REAL columns
-_TEXTS = ("technician", "note")  # nullable text details
 
 
 def _tests_sql(details: bool = True) -> str:
@@ -104,32 +92,9 @@ def _tests_sql(details: bool = True) -> str:
     return "SELECT " + ", ".join(columns) + _TESTS_FROM
 
 
-#: Stands in for NULL in the Arrow read's measurement columns: far outside any value the
-#: store accepts (validation bounds every measurement), and exact in a REAL.
-NULL_MEASUREMENT = -1e300
-
-
-def _arrow_tests_sql(details: bool = True) -> str:
-    """:func:`_tests_sql` for the Arrow read: no NULLs, no voids (read apart: few).
-
-    ADBC infers a column's type from its first rows and fails on a later value of another
-    type, so the Arrow read never returns NULL: a measurement reads ``NULL_MEASUREMENT``,
-    the throttle flag -1, a text detail '' beside an ``IS NULL`` flag.
-    :func:`_restore_nulls` puts the NULLs back.
-    """
-    columns = ["t.id AS test_id", "t.unit_id", "t.tested_at", "t.hours",
-               *(f"COALESCE(t.{name}, {NULL_MEASUREMENT!r}) AS {name}" for name in _MEASURED),
-               "COALESCE(t.throttle_open, -1) AS throttle_open"]
-    if details:
-        columns += [part for name in _TEXTS for part in (
-            f"COALESCE(t.{name}, '') AS {name}", f"(t.{name} IS NULL) AS {name}__null")]
-        columns.append("t.source")
-    return "SELECT " + ", ".join(columns) + " FROM test t"
-
-
 def _restore_nulls(tests: pd.DataFrame, voids: pd.DataFrame) -> pd.DataFrame:
-    """Undo :func:`_arrow_tests_sql`'s stand-ins, widen its narrowed integer ids and add
-    the voids: the columns and types of the plain read."""
+    """Undo :func:`fleetdb.bulkread.tests_sql`'s stand-ins, widen its narrowed integer ids
+    and add the voids: the columns and types of the plain read."""
     for name in _MEASURED:
         column = tests[name].to_numpy(dtype=float)
         tests[name] = np.where(column == NULL_MEASUREMENT, np.nan, column)
@@ -219,27 +184,16 @@ def read(engine: Engine, unit_ids: list[int] | None = None,
                    + _unit_filter(unit_ids, "u.id")).set_index("unit_id")
     units["site_baro_kpa"] = atmosphere.pressure_kpa(units["elevation_m"].astype(float))
 
-    arrow = _arrow_source(engine, unit_ids is None)
-    readings_sql = ("SELECT r.test_id, r.kind, COALESCE(r.cylinder, 0) AS cylinder, "
-                    "r.value_si AS value FROM reading r"
-                    + (" JOIN test t ON t.id = r.test_id" + _unit_filter(unit_ids, "t.unit_id")
-                       if unit_ids is not None else ""))
+    arrow = _arrow_source(engine, unit_ids is None, details)
     voids = None
     if arrow is not None:
-        # Three processes: the tests, and the readings in two halves by id (each kind as
-        # its number in KINDS); the voids apart, bounded alike.
-        half, last = arrow.last_reading // 2, arrow.last_test
-        kind_code = ("CASE r.kind " + " ".join(f"WHEN '{k}' THEN {i}" for i, k in enumerate(KINDS))
-                     + " ELSE -1 END AS kind")
-        coded_sql = readings_sql.replace("r.kind", kind_code, 1)
-        tests, readings = arrowread.read_sqlite_tables(arrow.path, [
-            [f"{_arrow_tests_sql(details)} WHERE t.id <= {last}"],
-            [f"{coded_sql} WHERE r.id <= {half} AND r.test_id <= {last}",
-             f"{coded_sql} WHERE r.id > {half} AND r.test_id <= {last}"]],
-            narrow=True, timestamps=("tested_at",))
+        tests, readings = arrow.collect()
         voids = _query(engine, "SELECT test_id, reason AS void_reason, voided_at FROM test_void "
-                       f"WHERE test_id <= {last}")
+                       f"WHERE test_id <= {arrow.last_test}")
     else:
+        readings_sql = bulkread.readings_sql() + (
+            " JOIN test t ON t.id = r.test_id" + _unit_filter(unit_ids, "t.unit_id")
+            if unit_ids is not None else "")
         tests = _query(engine, _tests_sql(details) + _unit_filter(unit_ids, "t.unit_id"))
         readings = _query(engine, readings_sql)
 

@@ -20,6 +20,7 @@ from sqlalchemy import func, insert, select, update
 from sqlalchemy.engine import Connection, Engine
 
 from fleetdb import access, audit
+from fleetdb.config import SESSION_SETTINGS
 from fleetdb.errors import FleetDBError
 from fleetdb.models import AppUser, UserSession
 
@@ -31,11 +32,6 @@ KEY_BYTES, SALT_BYTES = 32, 16
 #: At least 8 characters (NIST SP 800-63B, section 5.1.1.2, memorised secrets).
 MIN_PASSWORD = 8
 MAX_PASSWORD = 1024
-#: Session limits (settings): minutes without a request, and hours since the login.
-SESSION_SETTINGS: tuple[tuple[str, int, str], ...] = (
-    ("session_idle_minutes", 30, "a session ends after this many minutes without a request"),
-    ("session_max_hours", 12, "a session ends this many hours after the login, used or not"),
-)
 #: Failed logins for one name within this window lock that name until the window passes.
 LOCKOUT_FAILURES, LOCKOUT_MINUTES = 5, 15
 #: Update a session's last-seen time at most this often (a write per request is not needed).

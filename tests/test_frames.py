@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import pandas as pd
 from hypothesis import given, settings
@@ -81,3 +83,50 @@ def test_id_lookups_equal_pandas_and_numpy(keys: list, ids: list, sparse: bool) 
     np.testing.assert_array_equal(positions(index, wanted), index.get_indexer(wanted))
     np.testing.assert_array_equal(member_mask(wanted, index.to_numpy()),
                                   np.isin(wanted, index.to_numpy()))
+
+
+def test_a_read_begun_early_is_the_read_frames_would_make(sqlite_url: str, monkeypatch,  # noqa: ANN001
+                                                          tmp_path) -> None:  # noqa: ANN001
+    from fleetdb import bulkread, db, migrate
+
+    migrate.upgrade(sqlite_url)
+    engine = db.make_engine(sqlite_url)
+    ingest.import_files(engine, [DATA / "fleet.csv", DATA / "tests.csv"])
+    monkeypatch.setattr(frames, "ARROW_READ_MIN_ROWS", 1)
+    started_now = frames.load(engine, details=False)
+    # Begun before the analysis (as `fleetdb refresh` does), then taken by frames.read.
+    monkeypatch.setattr(bulkread, "ARROW_READ_MIN_ROWS", 1)
+    assert bulkread.begin(sqlite_url)
+    assert not bulkread.begin(sqlite_url)  # one at a time per store
+    path = engine.url.database
+    assert bulkread.take(path, details=True) is None  # other columns: not this read
+    taken = frames.load(engine, details=False)
+    assert bulkread.take(path, details=False) is None  # taken once
+    pd.testing.assert_frame_equal(taken.tests, started_now.tests)
+    pd.testing.assert_frame_equal(taken.readings, started_now.readings)
+    # Not begun: another database, a file that is not there (and is not created), a
+    # store below the threshold.
+    assert not bulkread.begin("postgresql+psycopg://nobody@localhost/none")
+    missing = tmp_path / "missing.sqlite"
+    assert not bulkread.begin(f"sqlite:///{missing}") and not missing.exists()
+    monkeypatch.setattr(bulkread, "ARROW_READ_MIN_ROWS", 10**9)
+    assert not bulkread.begin(sqlite_url)
+    engine.dispose()
+
+
+def test_a_read_never_taken_is_stopped_and_its_files_removed(sqlite_url: str,
+                                                             monkeypatch) -> None:  # noqa: ANN001
+    from fleetdb import bulkread, db, migrate
+
+    migrate.upgrade(sqlite_url)
+    engine = db.make_engine(sqlite_url)
+    ingest.import_files(engine, [DATA / "fleet.csv", DATA / "tests.csv"])
+    monkeypatch.setattr(bulkread, "ARROW_READ_MIN_ROWS", 1)
+    assert bulkread.begin(sqlite_url)
+    pending = bulkread._begun[engine.url.database].pending
+    files = [pending.base, *pending.outs]
+    bulkread._cancel_untaken()  # what the process does at exit
+    assert not bulkread._begun
+    assert all(run.poll() is not None for run in pending.runs)
+    assert not any(Path(f).exists() for f in files)
+    engine.dispose()
