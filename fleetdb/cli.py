@@ -650,4 +650,9 @@ def defaults(as_json: bool) -> None:
 
 def main() -> None:
     """Console-script entry point."""
-    cli(prog_name="fleetdb")
+    from fleetdb import shortlived
+
+    try:
+        cli(prog_name="fleetdb")
+    finally:  # click ends the command with SystemExit
+        shortlived.freeze_for_exit()

@@ -182,3 +182,62 @@ def test_refresh_in_worker_processes(store: str, monkeypatch) -> None:  # noqa: 
     assert "processes" not in alone and split.endswith("(assessed in 2 processes)\n")
     assert split.replace(" (assessed in 2 processes)", "") == alone
     assert "Invalid value for '--workers'" in run(["refresh", "--workers", "0"], store, code=2)
+
+
+def test_the_command_imports_no_analysis_before_it_runs() -> None:
+    # `fleetdb refresh` starts its bulk read before pandas, SQLAlchemy and scipy load
+    # (fleetdb.bulkread): the command module itself must not import them.
+    import subprocess
+    import sys
+
+    heavy = ("pandas", "numpy", "sqlalchemy", "scipy", "sqlmodel", "alembic", "pyarrow")
+    loaded = subprocess.run(
+        [sys.executable, "-c", "import sys, fleetdb.cli, fleetdb.bulkread; "
+         f"print(','.join(m for m in {heavy!r} if m in sys.modules))"],
+        capture_output=True, text=True, check=True).stdout.strip()
+    assert loaded == ""
+
+
+def test_refresh_with_its_read_begun_early(sqlite_url: str, monkeypatch) -> None:  # noqa: ANN001
+    # The same result whether the Arrow read is begun by the command before the analysis
+    # is imported, started by the analysis itself, or not used (the plain read).
+    from fleetdb import bulkread, frames, health
+
+    run(["init"], sqlite_url)
+    run(["import", str(DATA / "fleet.csv"), str(DATA / "tests.csv"),
+         str(DATA / "events.csv")], sqlite_url)
+    monkeypatch.setattr(health.threading, "active_count", lambda: 1)
+    args = ["refresh", "--as-of", "2024-06-03", "--workers", "2"]
+    plain = run(args, sqlite_url)
+    board = run(["board", "--as-of", "2024-06-03", "--json"], sqlite_url)
+    monkeypatch.setattr(frames, "ARROW_READ_MIN_ROWS", 1)
+    assert run(args, sqlite_url) == plain
+    taken = []
+    monkeypatch.setattr(bulkread, "ARROW_READ_MIN_ROWS", 1)
+
+    def take(path: str, details: bool) -> bulkread.FleetRead | None:
+        taken.append(bulkread._begun.pop(path, None))
+        assert details is False  # the refresh's lean columns
+        return taken[-1]
+
+    monkeypatch.setattr(bulkread, "take", take)
+    assert run(args, sqlite_url) == plain
+    assert len(taken) == 1 and taken[0] is not None  # begun by the command, then taken
+    assert run(["board", "--as-of", "2024-06-03", "--json"], sqlite_url) == board
+    assert not bulkread._begun
+
+
+def test_the_command_freezes_its_objects_on_the_way_out(monkeypatch) -> None:  # noqa: ANN001
+    import gc
+    import sys
+
+    from fleetdb import cli as cli_mod
+
+    monkeypatch.setattr(sys, "argv", ["fleetdb", "--version"])
+    gc.unfreeze()
+    try:
+        with pytest.raises(SystemExit):
+            cli_mod.main()
+        assert gc.get_freeze_count() > 0
+    finally:
+        gc.unfreeze()  # this test process goes on

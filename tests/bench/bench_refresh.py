@@ -131,9 +131,15 @@ def _one_unit(path: str, samples: int) -> None:
 
 
 def _ours(path: str) -> None:
+    """What ``fleetdb refresh`` does: the bulk read begun before the analysis's imports,
+    the refresh, and the command's exit (:func:`fleetdb.cli.main`)."""
+    from fleetdb import bulkread, shortlived
+
+    bulkread.begin(f"sqlite:///{path}")
     from fleetdb import db, health
 
     print(json.dumps(health.refresh_fleet(db.make_engine(f"sqlite:///{path}"))))
+    shortlived.freeze_for_exit()
 
 
 def cached_store(units: int) -> tuple[Path, dict]:
