@@ -115,6 +115,10 @@ def _t_quantile(q: np.ndarray, df: np.ndarray) -> np.ndarray:
     return out
 
 
+#: Whole degrees of freedom up to this many are looked up in a table by :func:`t_ppf`.
+_T_TABLE_DF = 4096
+
+
 def t_ppf(q: ArrayLike | float, df: ArrayLike | float) -> np.ndarray:
     """``scipy.stats.t.ppf`` elementwise, computed once per distinct (q, df) pair.
 
@@ -125,8 +129,21 @@ def t_ppf(q: ArrayLike | float, df: ArrayLike | float) -> np.ndarray:
     q_arr, df_arr = np.broadcast_arrays(np.asarray(q, dtype=float), np.asarray(df, dtype=float))
     if q_arr.size < 64:
         return _t_quantile(q_arr, df_arr)
-    q_codes, q_uniq = pd.factorize(q_arr.ravel(), use_na_sentinel=False)
-    df_codes, df_uniq = pd.factorize(df_arr.ravel(), use_na_sentinel=False)
+    flat_q, flat_df = q_arr.ravel(), df_arr.ravel()
+    if flat_q[0] == flat_q[0] and (flat_q == flat_q[0]).all():
+        # One level (step detection judges a fit group at one level) and mostly small
+        # whole degrees of freedom (a fit's n - 2): a table of them, indexed; no hashing.
+        small = (flat_df >= 0) & (flat_df <= _T_TABLE_DF) & (flat_df == np.trunc(flat_df))
+        if small.any():
+            out = np.empty(flat_q.size)
+            whole = flat_df[small].astype(np.int64)
+            levels = np.full(int(whole.max()) + 1, flat_q[0])
+            out[small] = _t_quantile(levels, np.arange(levels.size, dtype=float))[whole]
+            if not small.all():
+                out[~small] = t_ppf(flat_q[~small], flat_df[~small])
+            return out.reshape(q_arr.shape)
+    q_codes, q_uniq = pd.factorize(flat_q, use_na_sentinel=False)
+    df_codes, df_uniq = pd.factorize(flat_df, use_na_sentinel=False)
     pair_codes, pairs = pd.factorize(q_codes.astype(np.int64) * len(df_uniq) + df_codes)
     values = _t_quantile(np.asarray(q_uniq, dtype=float)[pairs // len(df_uniq)],
                          np.asarray(df_uniq, dtype=float)[pairs % len(df_uniq)])
@@ -239,6 +256,14 @@ def _row_ties(sorted_rows: np.ndarray) -> np.ndarray:
     return np.bincount(row_of_run, weights=t * (t - 1) * (2 * t + 5), minlength=m)
 
 
+def _sorted_median(sorted_rows: np.ndarray) -> np.ndarray:
+    """Per row of a row-sorted matrix, its median: ``np.median(rows, axis=1)`` (the same
+    floats: the middle value, or the mean of the two middle values), without partitioning
+    again."""
+    size = sorted_rows.shape[1]
+    return (sorted_rows[:, (size - 1) // 2] + sorted_rows[:, size // 2]) / 2
+
+
 def _theil_sen_block(xm: np.ndarray, ym: np.ndarray, z: float) -> dict[str, np.ndarray]:
     """Theil-Sen for a block of series of equal length, one series per row."""
     m, size = xm.shape
@@ -259,14 +284,17 @@ def _theil_sen_block(xm: np.ndarray, ym: np.ndarray, z: float) -> dict[str, np.n
 
     has = valid > 0
     median = np.where(has, (at((valid - 1) // 2) + at(valid // 2)) / 2, np.nan)
-    var_s = (size * (size - 1) * (2 * size + 5) - _row_ties(np.sort(xm, axis=1))
-             - _row_ties(np.sort(ym, axis=1))) / 18
+    # Each row sorted (the fits give x already in order), for the ties and the medians.
+    xm_sorted = xm if size < 2 or (xm[:, 1:] >= xm[:, :-1]).all() else np.sort(xm, axis=1)
+    ym_sorted = np.sort(ym, axis=1)
+    var_s = (size * (size - 1) * (2 * size + 5) - _row_ties(xm_sorted)
+             - _row_ties(ym_sorted)) / 18
     with np.errstate(invalid="ignore"):
         width = z * np.sqrt(var_s)
     ok = has & np.isfinite(width)
     low = np.where(ok, at(np.maximum(np.round((valid - width) / 2) - 1, 0)), np.nan)
     high = np.where(ok, at(np.minimum(np.round((valid + width) / 2), valid - 1)), np.nan)
-    intercept = np.median(ym, axis=1) - median * np.median(xm, axis=1)
+    intercept = _sorted_median(ym_sorted) - median * _sorted_median(xm_sorted)
     return {"n_pairs": valid, "slope": median, "intercept": intercept, "low_slope": low,
             "high_slope": high}
 

@@ -63,6 +63,11 @@ def test_t_quantiles_equal_scipy_stats(size: int) -> None:
     q = rng.choice([0.0, 1e-9, 0.025, 0.5, 0.95, 0.975, 0.9999, 1.0, np.nan], size)
     df = rng.choice([-1.0, 0.0, 0.5, 1.0, 2.0, 3.0, 17.0, 1e6, np.inf, np.nan], size)
     np.testing.assert_array_equal(trend.t_ppf(q, df), stats.t.ppf(q, df))
+    # One level for every row (the table of whole degrees of freedom), at each level.
+    for level in (0.0, 0.025, 0.975, 0.999, 1.0):
+        many = np.r_[df, rng.integers(0, 5000, size).astype(float)]
+        np.testing.assert_array_equal(trend.t_ppf(np.full(many.size, level), many),
+                                      stats.t.ppf(level, many))
     np.testing.assert_array_equal(trend._t_quantile(np.array(0.0), np.array(4.0)),
                                   stats.t.ppf(0.0, 4.0))
     p = np.array([0.0, 1e-9, 0.05, 0.5, 0.95, 1.0, np.nan])
@@ -172,6 +177,22 @@ def test_theil_sen_matches_scipy_theilslopes(ties: bool, max_n: int) -> None:
         assert fit["intercept"] == pytest.approx(ref.intercept, rel=1e-12, abs=1e-12)
         assert fit["low_slope"] == pytest.approx(ref.low_slope, rel=1e-12, abs=1e-15, nan_ok=True)
         assert fit["high_slope"] == pytest.approx(ref.high_slope, rel=1e-12, abs=1e-15, nan_ok=True)
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.integers(1, 12), st.integers(1, 6), st.integers(0, 2**32 - 1))
+def test_theil_sen_in_order_rows_and_their_medians_as_numpy(size: int, rows: int,
+                                                             seed: int) -> None:
+    # Reference: numpy.median, and the same block fitted from rows not in x order.
+    rng = np.random.default_rng(seed)
+    xm = np.sort(rng.integers(0, 5, (rows, size)).astype(float) * 250.5, axis=1)
+    ym = rng.integers(0, 4, (rows, size)).astype(float) * 0.1 + 900
+    assert np.array_equal(trend._sorted_median(np.sort(ym, axis=1)), np.median(ym, axis=1))
+    shuffle = rng.permutation(size)
+    in_order = trend._theil_sen_block(xm, ym, 1.96)
+    shuffled = trend._theil_sen_block(xm[:, shuffle], ym[:, shuffle], 1.96)
+    for key, values in in_order.items():
+        assert np.array_equal(values, shuffled[key], equal_nan=True), key
 
 
 # --------------------------------------------------------------------------- crossing
