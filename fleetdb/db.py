@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import weakref
 from datetime import UTC, datetime
 from functools import lru_cache
 from pathlib import Path
@@ -35,6 +36,10 @@ def ensure_sqlite_folder(url: str) -> None:
         Path(parsed.database).parent.mkdir(parents=True, exist_ok=True)
 
 
+#: Every engine this process made (and still holds), for :func:`close_all`.
+_ENGINES: weakref.WeakSet[Engine] = weakref.WeakSet()
+
+
 def make_engine(url: str) -> Engine:
     """A new engine for ``url``; SQLite files and their folder are created on demand.
 
@@ -45,8 +50,21 @@ def make_engine(url: str) -> Engine:
         ensure_sqlite_folder(url)
         engine = create_engine(url, connect_args={"timeout": SQLITE_BUSY_TIMEOUT_MS / 1000})
         event.listen(engine, "connect", _sqlite_pragmas)
-        return engine
-    return create_engine(url, pool_pre_ping=True)
+    else:
+        engine = create_engine(url, pool_pre_ping=True)
+    _ENGINES.add(engine)
+    return engine
+
+
+def close_all() -> None:
+    """Close the pooled connections of every engine made here (each engine stays usable).
+
+    A process about to exit calls it: SQLite's last connection to a file, on closing,
+    moves the write-ahead log into the file and removes it, so that a copy of the file
+    alone holds every committed write.
+    """
+    for engine in list(_ENGINES):
+        engine.dispose()
 
 
 @lru_cache(maxsize=8)
