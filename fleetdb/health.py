@@ -240,23 +240,6 @@ def _family_work(raw: frames.RawFleet, per_unit: float = UNIT_WORK) -> dict[int,
             for f, n in units.items()}
 
 
-def _family_bins(raw: frames.RawFleet, n: int,
-                 weight: dict[int, float] | None = None) -> list[list[int]]:
-    """The fleet's families in at most ``n`` bins of about equal work, heaviest first.
-
-    A family's work is counted by :func:`_family_work` (or given as ``weight``); families
-    are placed greedily, largest first, into the lightest bin.
-    """
-    weight = _family_work(raw) if weight is None else weight
-    bins: list[list[int]] = [[] for _ in range(max(1, n))]
-    load = [0.0] * len(bins)
-    for fam in sorted(weight, key=lambda f: (-weight[f], f)):
-        lightest = load.index(min(load))
-        bins[lightest].append(fam)
-        load[lightest] += weight[fam]
-    return [sorted(b) for b in bins if b]
-
-
 @dataclass
 class _Part:
     """What assessing some families gives a full refresh: snapshot rows to write, each
@@ -292,13 +275,16 @@ def _assess_part(raw: list[frames.RawFleet], families: list[int] | None,
                  family_params=params)
 
 
-def _worker(send: Any, holder: list[frames.RawFleet], parts: list[list[int]],
-            readings: list[float], moment: pd.Timestamp, stamps: tuple) -> None:
-    """A forked worker: assess some families of the inherited rows, part by part, and
-    send each part's result as soon as it is ready.
+def _worker(send: Any, holder: list[frames.RawFleet], order: list[int], taken: Any,
+            readings: dict[int, float], moment: pd.Timestamp, stamps: tuple) -> None:
+    """A forked worker: take the next engine family of ``order`` not yet taken by any
+    worker (``taken``: a shared counter), assess it from the inherited rows, send its
+    result, and so on until none is left; then send ``("done", None)``.
 
-    A thread sends, in order, while the next part is assessed: a pipe holds little, so a
-    send waits until the parent reads, and the parent may be writing another part then.
+    Taking families one at a time as workers come free, heaviest first, evens out the
+    workers' finishing times whatever the estimate of each family's work. A thread sends,
+    in order, while the next family is assessed: a pipe holds little, so a send waits
+    until the parent reads, and the parent may be writing another part then.
     """
     outbox: queue.SimpleQueue = queue.SimpleQueue()
 
@@ -306,15 +292,24 @@ def _worker(send: Any, holder: list[frames.RawFleet], parts: list[list[int]],
         while (message := outbox.get()) is not None:
             send.send(message)
 
+    def take() -> int | None:
+        with taken.get_lock():
+            at = taken.value
+            taken.value = at + 1
+        return order[at] if at < len(order) else None
+
     thread = threading.Thread(target=sender, daemon=True)
     thread.start()
+    family = None
     try:
-        for i, families in enumerate(parts):
-            outbox.put(("ok", _assess_part(holder, families, moment, stamps,
-                                           last=i == len(parts) - 1, readings=readings[i])))
+        while (family := take()) is not None:
+            outbox.put(("ok", _assess_part(holder, [family], moment, stamps, last=False,
+                                           readings=readings[family])))
+        outbox.put(("done", None))
     except BaseException:  # the parent re-raises it with the worker's traceback
-        outbox.put(("error", traceback.format_exc()))
+        outbox.put(("error", f"engine family {family}:\n{traceback.format_exc()}"))
     finally:
+        holder.clear()
         outbox.put(None)
         thread.join()
         send.close()
@@ -328,11 +323,12 @@ def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: t
     A large fleet is split by engine family over the machine's cores: every statistic
     the analysis pools is pooled within a family, so the parts give exactly the
     whole-fleet result. The read happens once, before the split; each worker is a fork
-    that inherits the rows read without copying them, shapes its families' frames,
-    assesses them, builds their snapshot rows and sends them back; the parent writes
-    each worker's rows as they arrive, while the others still work. A fork is only taken
-    from a single-threaded process (the command line), never inside the dashboard's
-    server; there, and on a small fleet, the assessment runs in-process.
+    that inherits the rows read without copying them and assesses one family at a time,
+    the heaviest first, taking the next one left when it is done (:func:`_worker`), and
+    sends back each family's snapshot rows; the parent writes each part as it arrives,
+    while the workers go on. A fork is only taken from a single-threaded process (the
+    command line), never inside the dashboard's server; there, and on a small fleet, the
+    assessment runs in-process.
     """
     # No local name holds the frames while forking: a fork copies this stack, and a
     # worker could then never free the whole fleet's frames once it has its own part.
@@ -342,51 +338,49 @@ def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: t
     # Linux only (numpy's and Arrow's thread pools are made anew in a forked child there;
     # on macOS a fork after the system's frameworks are loaded is not safe).
     can_fork = sys.platform == "linux" and threading.active_count() == 1
-    split = workers > 1 and can_fork
-    weight = _family_work(holder[0]) if split else {}
-    bins = _family_bins(holder[0], workers, weight) if split else []
-    if len(bins) < 2:
+    weight = _family_work(holder[0]) if workers > 1 and can_fork else {}
+    if len(weight) < 2:
         part = _assess_part(holder, None, moment, stamps)
         write(part.rows)
         part.rows = []
         return part
     ctx = mp.get_context("fork")
+    order = sorted(weight, key=lambda f: (-weight[f], f))  # heaviest first
     readings = _family_work(holder[0], per_unit=0)
-    gc.freeze()  # the workers' collections then never write into the pages they share
-    running: dict[Any, tuple[Any, list[int]]] = {}
-    left: dict[Any, int] = {}  # parts each worker has still to send
+    taken = ctx.Value("i", 0)
+    running: dict[Any, Any] = {}
     parts: list[_Part] = []
+    gc.freeze()  # the workers' collections then never write into the pages they share
     try:
-        for families in bins:
+        for _ in range(min(workers, len(order))):
             receive, send = ctx.Pipe(duplex=False)
-            pieces = _pieces(families, weight)
-            sizes = [sum(readings[f] for f in piece) for piece in pieces]
-            proc = ctx.Process(target=_worker,
-                               args=(send, holder, pieces, sizes, moment, stamps), daemon=True)
+            proc = ctx.Process(target=_worker, daemon=True,
+                               args=(send, holder, order, taken, readings, moment, stamps))
             proc.start()
             send.close()
-            running[receive], left[receive] = (proc, families), len(pieces)
+            running[receive] = proc
         holder.clear()  # the workers have their own; the parent only writes from here
+        left = set(running)
         while left:
             for receive in mp_connection.wait(list(left)):
-                proc, families = running[receive]
+                proc = running[receive]
                 try:
                     status, payload = receive.recv()
                 except EOFError:  # it died without a word (killed, out of memory)
                     proc.join()
                     status, payload = "error", f"the worker ended with exit code {proc.exitcode}"
+                if status == "done":
+                    left.discard(receive)
+                    proc.join()
+                    continue
                 if status != "ok":
-                    raise RuntimeError(f"assessing engine families {families} failed:\n{payload}")
+                    raise RuntimeError(f"assessing engine families failed: {payload}")
                 write(payload.rows)
                 payload.rows = []
                 parts.append(payload)
-                left[receive] -= 1
-                if not left[receive]:
-                    del left[receive]
-                    proc.join()
     finally:  # whatever failed, no worker is left behind, waiting to send
         gc.unfreeze()
-        for receive, (proc, _) in running.items():
+        for receive, proc in running.items():
             if proc.is_alive():
                 proc.terminate()
             proc.join()
@@ -394,13 +388,6 @@ def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: t
     return _Part(rows=[], levels=pd.concat([p.levels for p in parts]).sort_index(),
                  family_params=pd.concat([p.family_params for p in parts]).sort_index(),
                  processes=len(running))
-
-
-def _pieces(families: list[int], weight: dict[int, float]) -> list[list[int]]:
-    """A worker's families in the order it assesses and sends them: one at a time,
-    heaviest first (lightest last, so that the parent writes most of the rows while the
-    workers finish; a smaller part needs a smaller heap)."""
-    return [[f] for f in sorted(families, key=lambda f: (-weight.get(f, 0.0), f))]
 
 
 class _SnapshotWriter:

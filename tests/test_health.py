@@ -194,24 +194,20 @@ def test_fleet_split_by_family_gives_the_same_snapshot(demo_file: Path, tmp_path
     assert stored_split == stored_one
 
 
-def test_family_bins_balance_the_work(demo: Engine) -> None:
+def test_family_work_and_subsets(demo: Engine) -> None:
+    # A family's work is its readings (tests times cylinders) plus UNIT_WORK per unit; the
+    # frames of a family subset hold that subset's units and their rows only.
     raw = frames.read(demo)
     fr = frames.shape(raw)
-    families = sorted(int(f) for f in fr.units["family_id"].unique())
-    for n in (1, 2, len(families), len(families) + 3):
-        bins = health._family_bins(raw, n)
-        assert sorted(f for b in bins for f in b) == families
-        assert len(bins) == min(n, len(families))
-    # Greedy largest-first into the lightest bin: no bin is more than the heaviest family
-    # above the lightest bin.
     tests = fr.tests["family_id"].value_counts()
     weight = (tests * fr.families["cylinders"].reindex(tests.index)
               + health.UNIT_WORK * fr.units["family_id"].value_counts().reindex(tests.index))
-    bins = health._family_bins(raw, 2)
-    loads = [sum(float(weight.get(f, 0)) for f in b) for b in bins]
-    assert max(loads) - min(loads) <= float(weight.max())
-    split = frames.shape(raw, bins[0])
-    assert set(split.units["family_id"]) == set(bins[0])
+    work = health._family_work(raw)
+    assert sorted(work) == sorted(int(f) for f in fr.units["family_id"].unique())
+    assert work == pytest.approx({int(f): float(w) for f, w in weight.items()})
+    some = sorted(work)[::2]
+    split = frames.shape(raw, some)
+    assert set(split.units["family_id"]) == set(some)
     assert set(split.tests["unit_id"]) <= set(split.units.index)
     assert set(split.readings["test_id"]) == set(split.tests.index) & set(fr.readings["test_id"])
     assert set(split.events["unit_id"]) <= set(split.units.index)
