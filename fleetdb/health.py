@@ -346,7 +346,8 @@ def _assess_split(holder: list[frames.RawFleet], moment: pd.Timestamp, stamps: t
         return part
     ctx = mp.get_context("fork")
     order = sorted(weight, key=lambda f: (-weight[f], f))  # heaviest first
-    readings = _family_work(holder[0], per_unit=0)
+    units = holder[0].units["family_id"].value_counts()  # the weight less its units' part
+    readings = {f: w - UNIT_WORK * float(units[f]) for f, w in weight.items()}
     taken = ctx.Value("i", 0)
     running: dict[Any, Any] = {}
     parts: list[_Part] = []
