@@ -435,7 +435,7 @@ def unit(fleet_no: str, unit: str, as_of: Any, as_json: bool, db: str | None) ->
     print_table(rows, [("id", "test"), ("tested_at", "tested at"), ("hours", "hours"),
                        ("compression", f"compression ({unit})"), ("wet", "wet"),
                        ("vac", "crank vac inHg"), ("v", "volts"), ("rpm", "rpm"),
-                       ("state", "")])
+                       ("state", "state")])
     for e in data["events"]:
         cyl = ",".join(map(str, e["cylinders"])) or "all"
         click.echo(f"  event {e['date']}: {e['kind']} (cylinders {cyl}) {e['note'] or ''}")

@@ -40,6 +40,11 @@ def test_init_import_and_listings(store: str) -> None:
     assert unit["health"]["level"] in ("act", "plan", "retest", "watch", "sound")
     kpa = json.loads(run(["unit", "T-301", "--json", "--units", "kPa"], store))
     assert kpa["tests"][0]["readings"]["compression"]["2"] == 2069.0
+    text = run(["unit", "T-101", "--units", "psi"], store)
+    header = next(line for line in text.splitlines() if line.startswith("test "))
+    rule = text.splitlines()[text.splitlines().index(header) + 1]
+    # Every column of the tests table has a heading, the test's state included.
+    assert header.split()[-1] == "state" and len(rule.split()) == 9
 
 
 def test_reimport_is_a_no_op(store: str) -> None:
