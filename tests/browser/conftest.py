@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import contextlib
 import os
+import re
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -105,3 +106,17 @@ def count_rows(store_url: str) -> Any:
         with db.get_engine(store_url).connect() as conn:
             return int(conn.execute(text(f"SELECT COUNT(*) FROM {table}")).scalar_one())
     return count
+
+
+def pick_unit(page: Any, dropdown_id: str, fleet_no: str) -> None:
+    """Open a fleet-number type-ahead, search for ``fleet_no`` and choose the unit offered.
+
+    The search box gets the whole text at once (``fill``): keys typed one by one at machine
+    speed can be lost while the dropdown's search box is still opening (seen: "T-101"
+    arrived as "T101"); a person types far slower.
+    """
+    page.locator(f"#{dropdown_id}").click()
+    search = page.locator("input.dash-dropdown-search")
+    search.wait_for(state="visible")
+    search.fill(fleet_no)
+    page.get_by_role("option", name=re.compile(f"^{re.escape(fleet_no)} ")).click()

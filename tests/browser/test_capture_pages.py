@@ -15,6 +15,7 @@ from typing import Any
 import pytest
 
 from fleetdb import capture_store, db
+from tests.browser.conftest import pick_unit
 from tests.test_capture_store import _channels, _recording, write_capture
 
 pytestmark = pytest.mark.browser
@@ -83,9 +84,7 @@ def test_upload_map_preview_save_and_find_the_test(page: Any, tmp_path: Path,
                                                    count_rows: Any) -> None:
     path = write_capture(tmp_path / "crank-0701.csv")
     page.goto("/log")
-    page.locator("#log-unit").click()
-    page.keyboard.type("T-101")
-    page.get_by_role("option", name=re.compile(r"^T-101 ")).click()
+    pick_unit(page, "log-unit", "T-101")
     page.locator("#log-source").get_by_text("a capture file", exact=False).click()
     page.locator("#log-capture-part").wait_for(state="visible")
     assert page.locator("#log-readings-panel").is_hidden()
@@ -143,9 +142,7 @@ def test_upload_map_preview_save_and_find_the_test(page: Any, tmp_path: Path,
 def test_bad_map_is_refused_on_the_page(page: Any, tmp_path: Path, count_rows: Any) -> None:
     path = write_capture(tmp_path / "crank.csv")
     page.goto("/log")
-    page.locator("#log-unit").click()
-    page.keyboard.type("T-101")
-    page.get_by_role("option", name=re.compile(r"^T-101 ")).click()
+    pick_unit(page, "log-unit", "T-101")
     page.locator("#log-source").get_by_text("a capture file", exact=False).click()
     page.locator("#log-capture-upload input[type=file]").set_input_files(str(path))
     _map_row(page, "trigger").wait_for()

@@ -15,6 +15,7 @@ import pytest
 from sqlalchemy import text
 
 from fleetdb import db
+from tests.browser.conftest import pick_unit
 
 pytestmark = pytest.mark.browser
 
@@ -23,9 +24,7 @@ HEALTH_LANDED = importlib.util.find_spec("fleetdb.health") is not None
 
 def _pick_unit(page: Any, fleet_no: str) -> None:
     """Type-ahead on the fleet number, then choose the unit offered."""
-    page.locator("#log-unit").click()
-    page.keyboard.type(fleet_no)
-    page.get_by_role("option", name=re.compile(f"^{re.escape(fleet_no)} ")).click()
+    pick_unit(page, "log-unit", fleet_no)
 
 
 def _type(page: Any, label: str, value: str) -> None:
