@@ -1,0 +1,209 @@
+"""The fleet's wear at a glance: per-unit wear rates and compression history, kept current.
+
+:func:`fleet_wear` assesses the whole fleet as of a day (the same fits the board's
+snapshot comes from) and gathers the frames the Fleet wear page draws. A whole-fleet
+assessment takes seconds on a large fleet, so :func:`bring_up_to_date` takes an earlier
+result and re-assesses only the units written to since (a logged test, a void, a service
+event), pooling them with the family statistics of the earlier result, as a one-unit
+health refresh pools with the stored ones. New family limits, or more than
+:data:`MAX_UNITS_TO_UPDATE` changed units, mean a whole-fleet assessment again.
+
+Nothing is ever deleted from the store, so the highest ids of the written tables only grow:
+:class:`StoreMark` is how far a result has seen.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass, replace
+
+import numpy as np
+import pandas as pd
+from sqlalchemy import text
+from sqlalchemy.engine import Engine
+
+from fleetdb import assess, frames
+
+#: Above this many changed units, a whole-fleet assessment is as quick as a partial one
+#: (measured in tests/bench/bench_fleetwear.py).
+MAX_UNITS_TO_UPDATE = 2000
+
+_TEST_COLUMNS = ["fleet_no", "family", "site", "elevation_m", "tested_at", "hours",
+                 "lowest_kpa", "lowest_sl_kpa", "mean_kpa", "mean_sl_kpa"]
+_WEAR_COLUMNS = ["fleet_no", "family", "site", "cylinder", "wear_kpa_per_1000h", "method",
+                 "faster_than_family"]
+
+
+@dataclass(frozen=True, order=True)
+class StoreMark:
+    """The highest id of each table a fleet assessment depends on (0: none yet)."""
+
+    test: int
+    void: int
+    event: int
+    limits: int
+
+
+def store_mark(engine: Engine) -> StoreMark:
+    """How far the store has been written: one query, four index lookups."""
+    with engine.connect() as conn:
+        row = conn.execute(text(
+            "SELECT (SELECT COALESCE(MAX(id), 0) FROM test), "
+            "(SELECT COALESCE(MAX(id), 0) FROM test_void), "
+            "(SELECT COALESCE(MAX(id), 0) FROM service_event), "
+            "(SELECT COALESCE(MAX(id), 0) FROM family_limits)")).one()
+    return StoreMark(*(int(v) for v in row))
+
+
+@dataclass(frozen=True)
+class FleetWear:
+    """The fleet-level frames of the Fleet wear page (kPa inside; wear as a loss, >= 0 = wear).
+
+    ``wear``: indexed by unit id, one row per unit with a fitted current cylinder series:
+    ``fleet_no, family, site, cylinder`` (its fastest-wearing cylinder),
+    ``wear_kpa_per_1000h``, ``method``, ``faster_than_family``.
+    ``families``: index family name: ``minimum_kpa``, ``family_wear_kpa_per_1000h``.
+    ``tests``: one row per trustworthy, non-voided dry compression test, by fleet number
+    then time: ``fleet_no, family, site, elevation_m, tested_at, hours, lowest_kpa,
+    lowest_sl_kpa, mean_kpa, mean_sl_kpa``.
+    ``latest``: the latest row of ``tests`` per unit, by fleet number.
+    ``family_params``: the pooled family statistics the fits used (see
+    :func:`fleetdb.fleetfit.family_params`); a partial update pools with them.
+    ``mark``: how far the store had been written when this was computed.
+    ``as_of``: the day assessed (its last second counts).
+    """
+
+    wear: pd.DataFrame
+    families: pd.DataFrame
+    tests: pd.DataFrame
+    latest: pd.DataFrame
+    family_params: pd.DataFrame
+    mark: StoreMark
+    as_of: dt.date
+
+
+def _moment(day: dt.date) -> pd.Timestamp:
+    return pd.Timestamp(day) + pd.Timedelta(hours=23, minutes=59, seconds=59)
+
+
+def _unit_frames(fr: frames.Frames,
+                 result: assess.Assessment) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """The ``wear`` and ``tests`` rows of the units in ``fr``."""
+    units = fr.units[["fleet_no", "family", "site", "elevation_m"]]
+    fits = result.fits
+    own = fits[fits["current"] & (fits["cylinder"] != assess.SPREAD_CYLINDER)
+               & fits["slope"].notna() & (fits["slope_source"] != "pooled_short")]
+    fastest = own.loc[own.groupby("unit_id")["slope"].idxmin()]
+    unit_ids = fastest["unit_id"].to_numpy(np.int64)
+    wear = units.loc[unit_ids, ["fleet_no", "family", "site"]].assign(
+        cylinder=fastest["cylinder"].to_numpy(int),
+        wear_kpa_per_1000h=-1000.0 * fastest["slope"].to_numpy(float),
+        method=fastest["slope_source"].to_numpy(),
+        faster_than_family=fastest["faster_than_family"].to_numpy(bool))
+    wear.index = pd.Index(unit_ids, name="unit_id")
+    pts = result.points
+    dry = pts[(pts["cylinder"] != assess.SPREAD_CYLINDER) & pts["in_fit"]]
+    per_test = dry.groupby("test_id").agg(
+        unit_id=("unit_id", "first"), tested_at=("tested_at", "first"), hours=("hours", "first"),
+        lowest_kpa=("value_kpa", "min"), lowest_sl_kpa=("value_sl", "min"),
+        mean_kpa=("value_kpa", "mean"), mean_sl_kpa=("value_sl", "mean"))
+    tests = units.reindex(per_test["unit_id"].to_numpy()).reset_index(drop=True).join(
+        per_test.reset_index(drop=True)).drop(columns="unit_id")
+    return wear, _ordered_tests(tests)
+
+
+def _ordered_tests(tests: pd.DataFrame) -> pd.DataFrame:
+    return tests.sort_values(["fleet_no", "tested_at"], ignore_index=True)[_TEST_COLUMNS]
+
+
+def _latest(tests: pd.DataFrame) -> pd.DataFrame:
+    return tests.groupby("fleet_no", sort=False).tail(1).reset_index(drop=True)
+
+
+def fleet_wear(engine: Engine, day: dt.date) -> FleetWear:
+    """Assess the whole fleet as of ``day`` and gather the Fleet wear frames.
+
+    :param engine: the store.
+    :param day: the day assessed (tests, events and voids up to its last second).
+    """
+    mark = store_mark(engine)
+    moment = _moment(day)
+    fr = frames.load(engine, as_of=moment, details=False)
+    result = assess.assess(fr, moment)
+    wear, tests = _unit_frames(fr, result)
+    names = fr.families["name"]
+    params = result.family_params
+    family_mu = params["family_mu"].reindex(names.index) if len(params) else np.nan
+    families = pd.DataFrame(
+        {"minimum_kpa": fr.families["min_compression_kpa"].to_numpy(float),
+         "family_wear_kpa_per_1000h": -1000.0 * np.asarray(family_mu, float)},
+        index=pd.Index(names.to_numpy(), name="family"))
+    return FleetWear(wear=wear, families=families, tests=tests, latest=_latest(tests),
+                     family_params=params, mark=mark, as_of=day)
+
+
+def units_written_since(engine: Engine, mark: StoreMark) -> list[int]:
+    """The units that got a test, a void or a service event after ``mark`` (sorted ids)."""
+    with engine.connect() as conn:
+        ids = conn.execute(text(
+            "SELECT unit_id FROM test WHERE id > :test "
+            "UNION SELECT t.unit_id FROM test_void v JOIN test t ON t.id = v.test_id "
+            "WHERE v.id > :void "
+            "UNION SELECT unit_id FROM service_event WHERE id > :event"),
+            {"test": mark.test, "void": mark.void, "event": mark.event}).scalars().all()
+    return sorted(int(i) for i in ids)
+
+
+def _splice(old: pd.DataFrame, new: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
+    """``old`` (sorted by fleet number) with the rows of each fleet number in ``keys``
+    replaced by that fleet number's rows of ``new`` (also sorted; may hold none).
+
+    One binary search per bound instead of a sort of the whole fleet's rows.
+    """
+    keys = sorted(keys)
+    fleet_nos = old["fleet_no"].to_numpy(object)
+    starts = np.searchsorted(fleet_nos, keys, side="left")
+    ends = np.searchsorted(fleet_nos, keys, side="right")
+    new_nos = new["fleet_no"].to_numpy(object)
+    new_starts = np.searchsorted(new_nos, keys, side="left")
+    new_ends = np.searchsorted(new_nos, keys, side="right")
+    pieces, at = [], 0
+    for start, end, new_start, new_end in zip(starts, ends, new_starts, new_ends, strict=True):
+        pieces.append(old.iloc[at:start])
+        pieces.append(new.iloc[new_start:new_end])
+        at = end
+    pieces.append(old.iloc[at:])
+    pieces = [p for p in pieces if len(p)] or [old.iloc[:0]]
+    return pd.concat(pieces, ignore_index=True)
+
+
+def bring_up_to_date(engine: Engine, known: FleetWear) -> FleetWear:
+    """``known`` with the units written to since it was computed assessed again.
+
+    Returns ``known`` itself when nothing was written; a whole-fleet assessment when
+    family limits changed, a unit of a family ``known`` has not seen was written, or
+    more than :data:`MAX_UNITS_TO_UPDATE` units changed.
+    """
+    mark = store_mark(engine)
+    if mark == known.mark:
+        return known
+    if mark.limits != known.mark.limits:
+        return fleet_wear(engine, known.as_of)
+    unit_ids = units_written_since(engine, known.mark)
+    if len(unit_ids) > MAX_UNITS_TO_UPDATE:
+        return fleet_wear(engine, known.as_of)
+    moment = _moment(known.as_of)
+    fr = frames.load(engine, unit_ids, as_of=moment, details=False)
+    if not set(fr.units["family"]) <= set(known.families.index):
+        return fleet_wear(engine, known.as_of)
+    if not len(fr.units):
+        return replace(known, mark=mark)
+    result = assess.assess(fr, moment, family_params=known.family_params)
+    wear, tests = _unit_frames(fr, result)
+    kept = known.wear.drop(index=fr.units.index, errors="ignore")
+    wear = pd.concat([kept, wear]).sort_index() if len(wear) else kept
+    fleet_nos = fr.units["fleet_no"].tolist()
+    tests = _splice(known.tests, tests, fleet_nos)
+    latest = _splice(known.latest, _latest(tests[tests["fleet_no"].isin(fleet_nos)]),
+                     fleet_nos)
+    return replace(known, wear=wear, tests=tests, latest=latest, mark=mark)
