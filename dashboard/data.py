@@ -4,8 +4,8 @@ The dashboard computes no analysis of its own. Every function takes the database
 (kept in ``app.server.config``, see :func:`current_url`) and calls fleetdb: ``views`` to
 read, ``logbook`` to check and write a test, ``health`` for levels, verdicts, the board
 and the unit report, ``plan`` and ``exports`` for the overhaul schedule and its files.
-The Fleet wear page's fleet-level frames (:func:`fleet_wear`) are gathered here from
-``frames.load`` and ``assess.assess`` until fleetdb offers them.
+The Fleet wear page's frames come from ``fleetwear``, kept per day and brought up to date
+after each write (:func:`fleet_wear`).
 """
 
 from __future__ import annotations
@@ -14,19 +14,20 @@ import csv
 import datetime as dt
 import importlib
 import io
+import threading
+from collections import OrderedDict
 from dataclasses import dataclass, field
 from functools import lru_cache
 from types import ModuleType
 from typing import Any
 
-import numpy as np
 import pandas as pd
 from flask import current_app
 from sqlalchemy import text
 from sqlalchemy.engine import Engine
 from sqlalchemy.exc import IntegrityError
 
-from fleetdb import access, assess, db, exports, frames, health, logbook, plan, views
+from fleetdb import access, db, exports, fleetwear, health, logbook, plan, views
 from fleetdb.errors import InvalidInput, InvalidValue, Problem
 from fleetdb.validate import parse_banks
 
@@ -408,70 +409,33 @@ def unit_report(url: str, fleet_no: str, as_of: dt.date | None) -> dict[str, Any
 
 # -- Fleet wear -----------------------------------------------------------------------------
 
-@dataclass(frozen=True)
-class FleetWear:
-    """The fleet-level frames of the Fleet wear page (kPa inside; wear as a loss, >= 0 = wear).
-
-    ``wear``: one row per unit with a fitted current cylinder series: ``fleet_no, family,
-    site, cylinder`` (its fastest-wearing cylinder), ``wear_kpa_per_1000h``, ``method``,
-    ``faster_than_family``.
-    ``families``: index family name: ``minimum_kpa``, ``family_wear_kpa_per_1000h``.
-    ``tests``: one row per trustworthy, non-voided dry compression test: ``fleet_no, family,
-    site, elevation_m, tested_at, hours, lowest_kpa, lowest_sl_kpa, mean_kpa, mean_sl_kpa``.
-    ``latest``: the latest row of ``tests`` per unit.
-    """
-
-    wear: pd.DataFrame
-    families: pd.DataFrame
-    tests: pd.DataFrame
-    latest: pd.DataFrame
+#: Fleet wear results kept, newest last: one per (url, day); the oldest goes first.
+_WEAR: OrderedDict[tuple[str, dt.date], fleetwear.FleetWear] = OrderedDict()
+_WEAR_KEPT = 2
+_WEAR_LOCK = threading.Lock()
 
 
-def fleet_wear(url: str, as_of: dt.date | None) -> FleetWear:
-    """The fleet's current wear rates and compression history, as of a day.
+def fleet_wear(url: str, as_of: dt.date | None) -> fleetwear.FleetWear:
+    """The fleet's current wear rates and compression history, as of a day
+    (``fleetdb.fleetwear``).
 
-    Computed from ``fleetdb.frames.load`` and ``fleetdb.assess.assess`` (the same fits the
-    board's snapshot comes from), cached by (url, day, :func:`store_version`). A fleet-level
-    function the lead may move into fleetdb.
+    The first view of a day assesses the whole fleet; later views bring that result up to
+    date, re-assessing only the units written to since (one query when nothing was).
+    One request at a time computes, so two page callbacks do not assess the fleet twice.
 
     :param as_of: the day (None: today).
     """
-    return _fleet_wear(url, as_of or dt.date.today(), store_version(url))
-
-
-@lru_cache(maxsize=2)
-def _fleet_wear(url: str, day: dt.date, version: tuple[int, int, int]) -> FleetWear:
-    moment = pd.Timestamp(day) + pd.Timedelta(hours=23, minutes=59, seconds=59)
-    fr = frames.load(engine_for(url), as_of=moment, details=False)
-    result = assess.assess(fr, moment)
-    units = fr.units[["fleet_no", "family", "site", "elevation_m"]]
-    fits = result.fits
-    own = fits[fits["current"] & (fits["cylinder"] != assess.SPREAD_CYLINDER)
-               & fits["slope"].notna() & (fits["slope_source"] != "pooled_short")]
-    fastest = own.loc[own.groupby("unit_id")["slope"].idxmin()]
-    wear = units.loc[fastest["unit_id"].to_numpy(), ["fleet_no", "family", "site"]].assign(
-        cylinder=fastest["cylinder"].to_numpy(int),
-        wear_kpa_per_1000h=-1000.0 * fastest["slope"].to_numpy(float),
-        method=fastest["slope_source"].to_numpy(),
-        faster_than_family=fastest["faster_than_family"].to_numpy(bool)).reset_index(drop=True)
-    names = fr.families["name"]
-    params = result.family_params
-    family_mu = params["family_mu"].reindex(names.index) if len(params) else np.nan
-    families = pd.DataFrame({"minimum_kpa": fr.families["min_compression_kpa"].to_numpy(float),
-                             "family_wear_kpa_per_1000h": -1000.0 * np.asarray(family_mu,
-                                                                                 float)},
-                            index=pd.Index(names.to_numpy(), name="family"))
-    pts = result.points
-    dry = pts[(pts["cylinder"] != assess.SPREAD_CYLINDER) & pts["in_fit"]]
-    per_test = dry.groupby("test_id").agg(
-        unit_id=("unit_id", "first"), tested_at=("tested_at", "first"), hours=("hours", "first"),
-        lowest_kpa=("value_kpa", "min"), lowest_sl_kpa=("value_sl", "min"),
-        mean_kpa=("value_kpa", "mean"), mean_sl_kpa=("value_sl", "mean"))
-    tests = units.reindex(per_test["unit_id"].to_numpy()).reset_index(drop=True).join(
-        per_test.reset_index(drop=True)).drop(columns="unit_id").sort_values(
-        ["fleet_no", "tested_at"], ignore_index=True)
-    latest = tests.groupby("fleet_no", sort=False).tail(1).reset_index(drop=True)
-    return FleetWear(wear=wear, families=families, tests=tests, latest=latest)
+    key = (url, as_of or dt.date.today())
+    engine = engine_for(url)
+    with _WEAR_LOCK:
+        known = _WEAR.get(key)
+        result = (fleetwear.fleet_wear(engine, key[1]) if known is None
+                  else fleetwear.bring_up_to_date(engine, known))
+        _WEAR[key] = result
+        _WEAR.move_to_end(key)
+        while len(_WEAR) > _WEAR_KEPT:
+            _WEAR.popitem(last=False)
+    return result
 
 
 # -- Overhaul plan --------------------------------------------------------------------------

@@ -511,6 +511,34 @@ def test_fleet_page_follows_the_highlighted_unit(demo_client: Any) -> None:
         "Fennick 4L", "Orsel 6D", "Quillan 6G", "Tavrin 6V"]
 
 
+def test_fleet_page_sees_a_new_test_without_assessing_the_fleet_again(
+        demo_file: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    import datetime as dt
+
+    import pandas as pd
+
+    from fleetdb import fleetwear
+
+    url = copy_store(demo_file, tmp_path)
+    day = dt.date.fromisoformat(DEMO_DAY)
+    before = data.fleet_wear(url, day).latest.set_index("fleet_no").loc["LT-101"]
+    readings = [logbook.TypedReading("compression", c, v, "psi")
+                for c, v in enumerate(["150", "151", "80", "149"], start=1)]
+    when = pd.Timestamp(before["tested_at"]) + pd.Timedelta(hours=1)
+    logbook.log_test(db.get_engine(url), "LT-101", when.isoformat(sep=" "),
+                     float(before["hours"]) + 10, readings,
+                     conditions={"crank_rpm": "240", "battery_v": "10.5",
+                                 "engine_temp_c": "80", "throttle_open": "yes"})
+
+    def whole_fleet(*_args: Any) -> None:
+        raise AssertionError("the whole fleet was assessed again for one test")
+
+    monkeypatch.setattr(fleetwear, "fleet_wear", whole_fleet)
+    after = data.fleet_wear(url, day).latest.set_index("fleet_no").loc["LT-101"]
+    assert after["tested_at"] == when and after["lowest_kpa"] < before["lowest_kpa"]
+    db.get_engine(url).dispose()
+
+
 @pytest.mark.parametrize(("row", "cells"), [
     ({"change": "worse", "previous_level": "sound", "level": "act", "hours_to_limit": 0.0,
       "projected_date_early": "2026-11-13", "projected_date": "2026-11-13"},
