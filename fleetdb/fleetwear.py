@@ -63,10 +63,10 @@ class FleetWear:
     ``fleet_no, family, site, cylinder`` (its fastest-wearing cylinder),
     ``wear_kpa_per_1000h``, ``method``, ``faster_than_family``.
     ``families``: index family name: ``minimum_kpa``, ``family_wear_kpa_per_1000h``.
-    ``tests``: one row per trustworthy, non-voided dry compression test, by fleet number
-    then time: ``fleet_no, family, site, elevation_m, tested_at, hours, lowest_kpa,
-    lowest_sl_kpa, mean_kpa, mean_sl_kpa``.
-    ``latest``: the latest row of ``tests`` per unit, by fleet number.
+    ``tests``: indexed by unit id, one row per trustworthy, non-voided dry compression
+    test, by unit then time: ``fleet_no, family, site, elevation_m, tested_at, hours,
+    lowest_kpa, lowest_sl_kpa, mean_kpa, mean_sl_kpa``.
+    ``latest``: the latest row of ``tests`` per unit (unit ids unique and increasing).
     ``family_params``: the pooled family statistics the fits used (see
     :func:`fleetdb.fleetfit.family_params`); a partial update pools with them.
     ``mark``: how far the store had been written when this was computed.
@@ -107,17 +107,19 @@ def _unit_frames(fr: frames.Frames,
         unit_id=("unit_id", "first"), tested_at=("tested_at", "first"), hours=("hours", "first"),
         lowest_kpa=("value_kpa", "min"), lowest_sl_kpa=("value_sl", "min"),
         mean_kpa=("value_kpa", "mean"), mean_sl_kpa=("value_sl", "mean"))
-    tests = units.reindex(per_test["unit_id"].to_numpy()).reset_index(drop=True).join(
-        per_test.reset_index(drop=True)).drop(columns="unit_id")
-    return wear, _ordered_tests(tests)
-
-
-def _ordered_tests(tests: pd.DataFrame) -> pd.DataFrame:
-    return tests.sort_values(["fleet_no", "tested_at"], ignore_index=True)[_TEST_COLUMNS]
+    test_units = per_test["unit_id"].to_numpy(np.int64)
+    tests = units.reindex(test_units).assign(
+        **{name: per_test[name].to_numpy() for name in _TEST_COLUMNS[4:]})
+    order = np.lexsort((per_test["tested_at"].to_numpy(), test_units))
+    tests = tests.iloc[order][_TEST_COLUMNS]
+    tests.index.name = "unit_id"
+    return wear, tests
 
 
 def _latest(tests: pd.DataFrame) -> pd.DataFrame:
-    return tests.groupby("fleet_no", sort=False).tail(1).reset_index(drop=True)
+    """The last row of each unit of ``tests`` (sorted by unit, then time)."""
+    ids = tests.index.to_numpy()
+    return tests[np.append(ids[1:] != ids[:-1], True)] if len(ids) else tests
 
 
 def fleet_wear(engine: Engine, day: dt.date) -> FleetWear:
@@ -154,27 +156,24 @@ def units_written_since(engine: Engine, mark: StoreMark) -> list[int]:
     return sorted(int(i) for i in ids)
 
 
-def _splice(old: pd.DataFrame, new: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
-    """``old`` (sorted by fleet number) with the rows of each fleet number in ``keys``
-    replaced by that fleet number's rows of ``new`` (also sorted; may hold none).
+def _splice(old: pd.DataFrame, new: pd.DataFrame, unit_ids: list[int]) -> pd.DataFrame:
+    """``old`` (sorted by its unit-id index) with the rows of each unit in ``unit_ids``
+    replaced by that unit's rows of ``new`` (also sorted; may hold none).
 
-    One binary search per bound instead of a sort of the whole fleet's rows.
+    Two binary searches per unit instead of a sort of the whole fleet's rows.
     """
-    keys = sorted(keys)
-    fleet_nos = old["fleet_no"].to_numpy(object)
-    starts = np.searchsorted(fleet_nos, keys, side="left")
-    ends = np.searchsorted(fleet_nos, keys, side="right")
-    new_nos = new["fleet_no"].to_numpy(object)
-    new_starts = np.searchsorted(new_nos, keys, side="left")
-    new_ends = np.searchsorted(new_nos, keys, side="right")
+    keys = np.sort(np.asarray(unit_ids, dtype=np.int64))
+    starts = old.index.searchsorted(keys, side="left")
+    ends = old.index.searchsorted(keys, side="right")
+    new_starts = new.index.searchsorted(keys, side="left")
+    new_ends = new.index.searchsorted(keys, side="right")
     pieces, at = [], 0
     for start, end, new_start, new_end in zip(starts, ends, new_starts, new_ends, strict=True):
         pieces.append(old.iloc[at:start])
         pieces.append(new.iloc[new_start:new_end])
         at = end
     pieces.append(old.iloc[at:])
-    pieces = [p for p in pieces if len(p)] or [old.iloc[:0]]
-    return pd.concat(pieces, ignore_index=True)
+    return pd.concat([p for p in pieces if len(p)] or [old.iloc[:0]])
 
 
 def bring_up_to_date(engine: Engine, known: FleetWear) -> FleetWear:
@@ -200,10 +199,8 @@ def bring_up_to_date(engine: Engine, known: FleetWear) -> FleetWear:
         return replace(known, mark=mark)
     result = assess.assess(fr, moment, family_params=known.family_params)
     wear, tests = _unit_frames(fr, result)
-    kept = known.wear.drop(index=fr.units.index, errors="ignore")
-    wear = pd.concat([kept, wear]).sort_index() if len(wear) else kept
-    fleet_nos = fr.units["fleet_no"].tolist()
-    tests = _splice(known.tests, tests, fleet_nos)
-    latest = _splice(known.latest, _latest(tests[tests["fleet_no"].isin(fleet_nos)]),
-                     fleet_nos)
+    changed = fr.units.index.to_list()
+    wear = _splice(known.wear, wear, changed)
+    latest = _splice(known.latest, _latest(tests), changed)
+    tests = _splice(known.tests, tests, changed)
     return replace(known, wear=wear, tests=tests, latest=latest, mark=mark)

@@ -55,8 +55,12 @@ def test_frames_describe_the_fleet(known: fleetwear.FleetWear) -> None:
     assert list(tests.columns) == ["fleet_no", "family", "site", "elevation_m", "tested_at",
                                    "hours", "lowest_kpa", "lowest_sl_kpa", "mean_kpa",
                                    "mean_sl_kpa"]
-    assert tests.equals(tests.sort_values(["fleet_no", "tested_at"], ignore_index=True))
+    by_unit = tests.reset_index().sort_values(["unit_id", "tested_at"], ignore_index=True)
+    assert tests.reset_index().equals(by_unit)
+    assert latest.index.is_unique and latest.index.is_monotonic_increasing
     assert latest["fleet_no"].is_unique and set(latest["fleet_no"]) == set(tests["fleet_no"])
+    last = tests.reset_index().groupby("unit_id").tail(1).set_index("unit_id")
+    pd.testing.assert_frame_equal(latest, last)
     assert (tests["lowest_kpa"] <= tests["mean_kpa"]).all()
     # One test, one barometer: every cylinder is scaled by the same 101.325 / baro factor.
     factor = tests["lowest_sl_kpa"] / tests["lowest_kpa"]

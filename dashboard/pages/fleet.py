@@ -1,7 +1,8 @@
 """Fleet wear: wear rates per engine family, a family's compression against hours, sites.
 
 The fleet-level frames come from :func:`dashboard.data.fleet_wear` (the same fits as the
-board), computed once per day shown and store version, then only drawn.
+board): the whole fleet assessed on the first view of a day, then only the units written to
+since; this module only draws them.
 """
 
 from __future__ import annotations
