@@ -282,7 +282,7 @@ def dry_compression_of(url: str, fleet_no: str,
     return frame, report["unit"]["min_compression_kpa"]
 
 
-# -- shared: days, names, the store's version ---------------------------------------------
+# -- shared: days and names -----------------------------------------------------------------
 
 def parse_day(value: str | None) -> dt.date | None:
     """An ISO day (``2026-12-01``, or the start of a longer ISO text); None if blank or bad.
@@ -305,19 +305,6 @@ def sites_and_families(url: str) -> tuple[list[str], list[str]]:
         families = conn.execute(text("SELECT name FROM engine_family ORDER BY name")
                                 ).scalars().all()
     return list(sites), list(families)
-
-
-def store_version(url: str) -> tuple[int, int, int]:
-    """What changes when tests, voids or service events are written: the cache key part.
-
-    Nothing is deleted from the store, so the highest ids and the void count only grow.
-    """
-    with engine_for(url).connect() as conn:
-        row = conn.execute(text(
-            "SELECT (SELECT COALESCE(MAX(id), 0) FROM test), "
-            "(SELECT COUNT(*) FROM test_void), (SELECT COALESCE(MAX(id), 0) FROM service_event)"
-        )).one()
-    return int(row[0]), int(row[1]), int(row[2])
 
 
 # -- Health board ---------------------------------------------------------------------------
@@ -394,17 +381,18 @@ def board_csv(url: str, filters: BoardFilters) -> str:
 
 @lru_cache(maxsize=32)
 def _unit_report(url: str, fleet_no: str, as_of: dt.date | None,
-                 version: tuple[int, int, int]) -> dict[str, Any]:
+                 mark: fleetwear.StoreMark) -> dict[str, Any]:
     return health.unit_report(engine_for(url), fleet_no, as_of)
 
 
 def unit_report(url: str, fleet_no: str, as_of: dt.date | None) -> dict[str, Any]:
     """``fleetdb.health.unit_report``, shared by the unit page's callbacks.
 
-    Cached by (url, unit, day, :func:`store_version`): a new test, void or event is seen
-    at once. Raises :class:`fleetdb.errors.UnitNotFound` for an unknown fleet number.
+    Cached by (url, unit, day, ``fleetwear.store_mark``): a new test, void, service event
+    or family limits version is seen at once. Raises
+    :class:`fleetdb.errors.UnitNotFound` for an unknown fleet number.
     """
-    return _unit_report(url, fleet_no, as_of, store_version(url))
+    return _unit_report(url, fleet_no, as_of, fleetwear.store_mark(engine_for(url)))
 
 
 # -- Fleet wear -----------------------------------------------------------------------------

@@ -22,11 +22,11 @@ import pandas as pd
 from sqlalchemy import text
 from sqlalchemy.engine import Engine
 
-from fleetdb import assess, frames
+from fleetdb import assess, frames, health
 
-#: Above this many changed units, a whole-fleet assessment is as quick as a partial one
-#: (measured in tests/bench/bench_fleetwear.py).
-MAX_UNITS_TO_UPDATE = 2000
+#: Above this many changed units, the whole fleet is assessed again (the rule of a health
+#: refresh after a write).
+MAX_UNITS_TO_UPDATE = health.MANY_UNITS
 
 _TEST_COLUMNS = ["fleet_no", "family", "site", "elevation_m", "tested_at", "hours",
                  "lowest_kpa", "lowest_sl_kpa", "mean_kpa", "mean_sl_kpa"]

@@ -460,6 +460,11 @@ def assess_units(engine: Engine, unit_ids: list[int], as_of: dt.date | None = No
                              family_params=params, all_findings=all_findings)
 
 
+#: Above this many units written at once, a partial refresh gives way to a whole-fleet one
+#: (the Fleet wear page's update, ``fleetwear.bring_up_to_date``, follows the same rule).
+MANY_UNITS = 2000
+
+
 def refresh_units(engine: Engine, unit_ids: list[int], as_of: dt.date | None = None) -> None:
     """Recompute a few units (after a logged test or an import) and update this week's rows.
 
@@ -469,7 +474,7 @@ def refresh_units(engine: Engine, unit_ids: list[int], as_of: dt.date | None = N
     """
     day, _ = _as_of(as_of)
     week = week_start(day)
-    if len(unit_ids) > 2000:
+    if len(unit_ids) > MANY_UNITS:
         refresh_fleet(engine, day)
         return
     result = assess_units(engine, unit_ids, day)

@@ -30,22 +30,11 @@ import tempfile
 import time
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
 
-from tests.bench.bench_refresh import ONE_UNIT_SQL, OUT, cached_store
+from tests.bench.bench_refresh import OUT, cached_store, ols_of_unit
 
 GOAL_UPDATE_MS = 100.0
-
-
-def _ols_of_unit(plain: sqlite3.Connection, uid: int) -> None:
-    """The baseline: one unit's compression readings, a least-squares slope per cylinder."""
-    rows = plain.execute(ONE_UNIT_SQL, (uid,)).fetchall()
-    cyl, x, y = (np.array(col, dtype=float) for col in zip(*rows, strict=True))
-    for c in np.unique(cyl):
-        xs, ys = x[cyl == c], y[cyl == c]
-        dx = xs - xs.mean()
-        _ = (dx * (ys - ys.mean())).sum() / (dx * dx).sum()
 
 
 def measure(path: str, samples: int, fresh_runs: int) -> dict:
@@ -80,7 +69,7 @@ def measure(path: str, samples: int, fresh_runs: int) -> dict:
         known = fleetwear.bring_up_to_date(engine, known)
         update_ms.append((time.perf_counter() - start) * 1000)
         start = time.perf_counter()
-        _ols_of_unit(plain, uid)
+        ols_of_unit(plain, uid)
         base_ms.append((time.perf_counter() - start) * 1000)
     fresh = fleetwear.fleet_wear(engine, day)
     same = known.tests.equals(fresh.tests) and known.latest.equals(fresh.latest)

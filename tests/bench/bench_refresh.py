@@ -66,6 +66,19 @@ ONE_UNIT_SQL = ("SELECT r.cylinder, t.hours, r.value_si FROM reading r JOIN test
                 "t.id = r.test_id WHERE t.unit_id = ? AND r.kind = 'compression'")
 
 
+def ols_of_unit(plain: sqlite3.Connection, uid: int) -> None:
+    """The one-unit baseline: the unit's compression readings (one plain SELECT), a
+    closed-form least-squares slope per cylinder."""
+    import numpy as np
+
+    rows = plain.execute(ONE_UNIT_SQL, (uid,)).fetchall()
+    cyl, x, y = (np.array(col, dtype=float) for col in zip(*rows, strict=True))
+    for c in np.unique(cyl):
+        xs, ys = x[cyl == c], y[cyl == c]
+        dx = xs - xs.mean()
+        _ = (dx * (ys - ys.mean())).sum() / (dx * dx).sum()
+
+
 def _plain_insert(plain: sqlite3.Connection, uid: int, when: str, hours: float,
                   cylinders: int) -> None:
     """The logging baseline: one test and its compression readings, plain INSERTs, committed."""
@@ -112,12 +125,7 @@ def _one_unit(path: str, samples: int) -> None:
                                      "engine_temp_c": "80"})
         log_ours.append((time.perf_counter() - start) * 1000)
         start = time.perf_counter()
-        rows = plain.execute(ONE_UNIT_SQL, (uid,)).fetchall()
-        cyl, x, y = (np.array(col, dtype=float) for col in zip(*rows, strict=True))
-        for c in np.unique(cyl):
-            xs, ys = x[cyl == c], y[cyl == c]
-            dx = xs - xs.mean()
-            _ = (dx * (ys - ys.mean())).sum() / (dx * dx).sum()
+        ols_of_unit(plain, uid)
         base.append((time.perf_counter() - start) * 1000)
         start = time.perf_counter()
         health.refresh_units(engine, [uid])
