@@ -30,11 +30,9 @@ MAX_UNITS_TO_UPDATE = health.MANY_UNITS
 
 _TEST_COLUMNS = ["fleet_no", "family", "site", "elevation_m", "tested_at", "hours",
                  "lowest_kpa", "lowest_sl_kpa", "mean_kpa", "mean_sl_kpa"]
-_WEAR_COLUMNS = ["fleet_no", "family", "site", "cylinder", "wear_kpa_per_1000h", "method",
-                 "faster_than_family"]
 
 
-@dataclass(frozen=True, order=True)
+@dataclass(frozen=True)
 class StoreMark:
     """The highest id of each table a fleet assessment depends on (0: none yet)."""
 
